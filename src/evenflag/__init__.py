@@ -1,0 +1,3 @@
+"""evenflag: reproducible fairness benchmarks of anomaly detectors."""
+
+__version__ = "0.1.0"
