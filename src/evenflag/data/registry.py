@@ -34,11 +34,15 @@ def to_spec(config: Any) -> DatasetSpec:
         return config
     try:
         merged = OmegaConf.merge(OmegaConf.structured(DatasetSpec), config)
+        missing = sorted(OmegaConf.missing_keys(merged))
+        if missing:
+            raise ConfigError(
+                f"dataset '{merged.get('name', '?')}': required value(s) {missing} not set; "
+                f"set them in the yaml or on the command line, e.g. dataset.{missing[0]}=..."
+            )
         spec = OmegaConf.to_object(merged)
     except OmegaConfBaseException as exc:
         raise ConfigError(f"dataset config: {str(exc).splitlines()[0]}; see configs/dataset/*.yaml for the allowed keys") from exc
-    if spec.name == "???" or spec.label == "???":
-        raise ConfigError("dataset config: 'name' and 'label' are required")
     return spec
 
 

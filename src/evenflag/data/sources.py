@@ -198,7 +198,8 @@ def read_openml(spec: SourceSpec, name: str, na_values=()):
     for column in frame.columns:
         if isinstance(frame[column].dtype, pd.CategoricalDtype):
             frame[column] = frame[column].astype(object)
-    data_file = Path(remote.data_file) if getattr(remote, "data_file", None) else None
+    stored = getattr(remote, "parquet_file", None) or getattr(remote, "data_file", None)
+    data_file = Path(stored) if stored else None
     digest = cache.sha256_file(data_file) if data_file and data_file.exists() else cache.sha256_bytes(
         pd.util.hash_pandas_object(frame, index=False).values.tobytes())
     return frame, digest, f"openml:{spec.openml_id}"

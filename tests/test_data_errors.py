@@ -1,0 +1,132 @@
+"""Bad input gets one clear line naming the problem and the fix."""
+
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from evenflag.data.protocol import ProtocolSpec, make_split
+from evenflag.data.registry import load_dataset
+from evenflag.errors import DatasetError, EvenflagError, ProtocolError, UnknownNameError
+
+
+def _claims(tmp_path, frame, name="claims.csv"):
+    path = tmp_path / name
+    frame.to_csv(path, index=False)
+    return {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
+            "anomaly_values": ["fraud"], "group": ["region"]}
+
+
+@pytest.fixture
+def frame():
+    rng = np.random.default_rng(0)
+    return pd.DataFrame({"amount": rng.normal(size=200), "region": rng.choice(["north", "south"], 200),
+                         "outcome": np.where(rng.random(200) < 0.1, "fraud", "ok")})
+
+
+def test_missing_group_column_lists_columns(tmp_path, frame):
+    spec = _claims(tmp_path, frame)
+    spec["group"] = ["county"]
+    with pytest.raises(DatasetError, match=r"group column 'county' not found; available columns: \['amount', 'region', 'outcome'\]"):
+        load_dataset(spec)
+
+
+def test_missing_label_column_lists_columns(tmp_path, frame):
+    spec = _claims(tmp_path, frame)
+    spec["label"] = "result"
+    with pytest.raises(DatasetError, match="label column 'result' not found; available columns"):
+        load_dataset(spec)
+
+
+def test_anomaly_values_absent(tmp_path, frame):
+    spec = _claims(tmp_path, frame)
+    spec["anomaly_values"] = ["Fraud!"]
+    with pytest.raises(DatasetError, match=r"none of the anomaly values \['Fraud!'\] occur in column 'outcome'; values present: \['fraud', 'ok'\]"):
+        load_dataset(spec)
+
+
+def test_single_group_value(tmp_path, frame):
+    frame["region"] = "north"
+    with pytest.raises(DatasetError, match="single value"):
+        load_dataset(_claims(tmp_path, frame))
+
+
+def test_nan_in_group_column(tmp_path, frame):
+    frame.loc[3, "region"] = None
+    with pytest.raises(DatasetError, match="group column 'region' has 1 missing values"):
+        load_dataset(_claims(tmp_path, frame))
+
+
+def test_empty_file(tmp_path):
+    path = tmp_path / "claims.csv"
+    path.write_text("")
+    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
+            "anomaly_values": ["fraud"], "group": ["region"]}
+    with pytest.raises(DatasetError, match="is empty"):
+        load_dataset(spec)
+
+
+def test_unreadable_parquet(tmp_path):
+    path = tmp_path / "claims.parquet"
+    path.write_bytes(b"this is not parquet")
+    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
+            "anomaly_values": ["fraud"], "group": ["region"]}
+    with pytest.raises(DatasetError, match="could not read .* as parquet"):
+        load_dataset(spec)
+
+
+def test_missing_file(tmp_path):
+    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(tmp_path / "nope.csv")}, "label": "outcome",
+            "anomaly_values": ["fraud"], "group": ["region"]}
+    with pytest.raises(DatasetError, match="does not exist"):
+        load_dataset(spec)
+
+
+def test_small_group_refused_or_merged(tmp_path, frame):
+    frame.loc[:4, "region"] = "islands"
+    spec = _claims(tmp_path, frame)
+    spec["min_group_size"] = 10
+    with pytest.raises(DatasetError, match=r"below min_group_size=10: \{'islands': 5\}; set dataset.small_groups=merge"):
+        load_dataset(spec)
+    spec["small_groups"] = "merge"
+    with pytest.warns(UserWarning):
+        ds = load_dataset(spec)
+    assert ds.merged_groups == ["islands"] and ds.group_counts()["other"] == 5
+
+
+def test_unknown_dataset_name_lists_valid_names():
+    with pytest.raises(UnknownNameError, match="unknown dataset 'adlut'; valid names: adult, "):
+        load_dataset("adlut")
+
+
+def test_misspelt_config_key():
+    with pytest.raises(EvenflagError, match="labels"):
+        load_dataset({"name": "x", "labels": "y"})
+
+
+def test_test_set_without_anomalies(tmp_path, frame):
+    frame["outcome"] = "ok"
+    frame.loc[0, "outcome"] = "fraud"
+    ds = load_dataset(_claims(tmp_path, frame))
+    # One anomaly: a 30% test split of a single row rounds to zero test anomalies.
+    with pytest.raises(ProtocolError, match="the test set has no anomalies after subsampling; raise protocol.test_anomaly_rate"):
+        make_split(ds, ProtocolSpec(test_fraction=0.3), seed=0)
+
+
+def test_bad_protocol_values():
+    ds = load_dataset("german_credit")
+    with pytest.raises(ProtocolError, match="protocol.kind 'oneclass' is unknown"):
+        make_split(ds, ProtocolSpec(kind="oneclass"), seed=0)
+    with pytest.raises(ProtocolError, match="test_fraction must be between 0 and 1"):
+        make_split(ds, ProtocolSpec(test_fraction=1.5), seed=0)
+
+
+def test_cli_prints_one_line_without_traceback(tmp_path, frame):
+    result = subprocess.run([sys.executable, "-m", "evenflag.cli", "datasets", "show", "adlut"],
+                            capture_output=True, text=True, env={**os.environ})
+    assert result.returncode == 2
+    assert result.stderr.strip().count("\n") == 0
+    assert "Traceback" not in result.stderr and "valid names" in result.stderr
