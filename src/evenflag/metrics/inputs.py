@@ -1,0 +1,149 @@
+"""Validated metric inputs and the weighted counts every metric is built from.
+
+All metrics are functions of a few count tables, computed once per call:
+
+* ``flagged[b, g, l]`` and ``total[b, g, l]``: weighted number of flagged
+  rows and of all rows in group ``g`` with label ``l``;
+* ``blocks[b, g, l, k]``: weighted number of rows of group ``g`` and label
+  ``l`` whose score equals the ``k``-th distinct score (ascending).
+
+``b`` indexes weight vectors: one vector of ones for the point estimate, or
+a batch of bootstrap weights. Writing every metric against these tables is
+what lets the bootstrap evaluate hundreds of resamples without a Python loop
+over them.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+
+from evenflag.errors import MetricInputError
+
+
+class UndefinedMetricWarning(UserWarning):
+    """A metric is undefined for these inputs and was reported as NaN."""
+
+
+def warn_undefined(key: str, reason: str) -> None:
+    warnings.warn(f"{key} is undefined ({reason}); reported as NaN", UndefinedMetricWarning, stacklevel=3)
+
+
+@dataclass
+class MetricInput:
+    """Label, score, flag and group of the test rows, validated and indexed.
+
+    Parameters
+    ----------
+    label : array of {0, 1}
+        1 = anomaly.
+    score : array of float
+        Higher = more anomalous.
+    flag : array of bool
+        Rows whose score passed the threshold.
+    group : array
+        Group value of each row (any hashable; shown as text).
+    embedding : 2-d array, optional
+        Per-row representation, for ``leakage_auroc``.
+    """
+
+    label: np.ndarray
+    score: np.ndarray
+    flag: np.ndarray
+    group: np.ndarray
+    group_names: list[str]
+    embedding: np.ndarray | None = None
+
+    @classmethod
+    def build(cls, label, score=None, flag=None, group=None, embedding=None) -> "MetricInput":
+        label = np.asarray(label)
+        n = len(label)
+        if n == 0:
+            raise MetricInputError("metric inputs are empty; there are no test rows to evaluate")
+        if not np.isin(label, (0, 1)).all():
+            raise MetricInputError("label must hold only 0 (normal) and 1 (anomaly)")
+        score = np.zeros(n) if score is None else np.asarray(score, dtype=np.float64)
+        flag = np.zeros(n, dtype=bool) if flag is None else np.asarray(flag).astype(bool)
+        if group is None:
+            raise MetricInputError("group is required: one group value per row")
+        group = np.asarray(group)
+        for name, values in (("score", score), ("flag", flag), ("group", group)):
+            if values.ndim != 1 or len(values) != n:
+                raise MetricInputError(f"{name} has shape {values.shape}; expected ({n},) like label")
+        if not np.isfinite(score).all():
+            raise MetricInputError(f"score has {int((~np.isfinite(score)).sum())} NaN or infinite values; the detector must return finite scores")
+        names, codes = np.unique(group.astype(str), return_inverse=True)
+        if len(names) < 2:
+            raise MetricInputError(f"group has a single value {list(names)}; fairness metrics need at least two groups")
+        if embedding is not None:
+            embedding = np.asarray(embedding, dtype=np.float64)
+            if embedding.ndim != 2 or len(embedding) != n:
+                raise MetricInputError(f"embedding has shape {embedding.shape}; expected ({n}, d)")
+        return cls(label.astype(np.int8), score, flag, codes.astype(np.int64), [str(v) for v in names], embedding)
+
+    @property
+    def n_groups(self) -> int:
+        return len(self.group_names)
+
+    def __post_init__(self):
+        self._order = None
+
+    # Score order and distinct-score blocks, computed once and reused by every metric.
+    def _index(self):
+        if self._order is None:
+            order = np.argsort(self.score, kind="stable")
+            sorted_scores = self.score[order]
+            starts = np.flatnonzero(np.r_[True, sorted_scores[1:] != sorted_scores[:-1]])
+            self._order = order
+            self._starts = starts
+            self._values = sorted_scores[starts]
+            block_of_sorted = np.cumsum(np.r_[False, sorted_scores[1:] != sorted_scores[:-1]])
+            self._block = np.empty(len(order), dtype=np.int64)
+            self._block[order] = block_of_sorted
+        return self._order, self._starts, self._values, self._block
+
+    def counts(self, weights: np.ndarray | None = None) -> "Counts":
+        """Count tables for a batch of row weights (shape (B, n)); None = one vector of ones."""
+        order, starts, values, block = self._index()
+        G, nb = self.n_groups, len(starts)
+        cell = self.group * 2 + self.label
+        if weights is None:
+            total = np.bincount(cell, minlength=2 * G).reshape(1, G, 2).astype(np.float64)
+            flagged = np.bincount(cell[self.flag], minlength=2 * G).reshape(1, G, 2).astype(np.float64)
+            blocks = np.bincount(cell * nb + block, minlength=2 * G * nb).reshape(1, G, 2, nb).astype(np.float64)
+        else:
+            weights = np.atleast_2d(weights)
+            onehot = np.zeros((len(cell), 2 * G), dtype=weights.dtype)
+            onehot[np.arange(len(cell)), cell] = 1
+            total = (weights @ onehot).reshape(-1, G, 2).astype(np.float64)
+            flagged = (weights[:, self.flag] @ onehot[self.flag]).reshape(-1, G, 2).astype(np.float64)
+            w_sorted = weights[:, order]
+            cell_sorted = cell[order]
+            # float32 holds integer counts exactly up to 2**24 rows and halves memory traffic.
+            blocks = np.empty((len(weights), G, 2, nb), dtype=np.float32)
+            for c in range(2 * G):
+                masked = np.where(cell_sorted == c, w_sorted, 0)
+                summed = masked if nb == len(order) else np.add.reduceat(masked, starts, axis=1)
+                blocks[:, c // 2, c % 2, :] = summed
+        return Counts(total=total, flagged=flagged, blocks=blocks, values=values, group_names=self.group_names)
+
+
+@dataclass
+class Counts:
+    """Weighted count tables; leading axis = weight vectors (resamples)."""
+
+    total: np.ndarray     # (B, G, 2)
+    flagged: np.ndarray   # (B, G, 2)
+    blocks: np.ndarray    # (B, G, 2, n_blocks)
+    values: np.ndarray    # (n_blocks,) distinct scores, ascending
+    group_names: list[str]
+
+
+def safe_divide(numerator, denominator):
+    numerator = np.asarray(numerator, dtype=np.float64)
+    denominator = np.asarray(denominator, dtype=np.float64)
+    out = np.full(np.broadcast(numerator, denominator).shape, np.nan)
+    np.divide(numerator, denominator, out=out, where=denominator > 0)
+    return out

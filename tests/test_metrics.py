@@ -1,0 +1,271 @@
+"""Metrics against published worked examples and reference libraries."""
+
+import warnings
+
+import numpy as np
+import pytest
+from hypothesis import assume, given, settings
+from hypothesis import strategies as st
+from scipy import stats
+from sklearn.metrics import average_precision_score, roc_auc_score
+
+from evenflag.errors import MetricInputError
+from evenflag.metrics.detection import auroc, average_precision
+from evenflag.metrics.flag_fairness import flag_rate_ratio, flag_rates, flips_to_parity, two_proportion_z
+from evenflag.metrics.inputs import MetricInput, UndefinedMetricWarning
+from evenflag.metrics.leakage import flag_overlap, leakage_auroc
+from evenflag.metrics.score_fairness import score_distance, score_ks, wasserstein_raw
+from evenflag.metrics.suites import evaluate
+
+ALL = ["detection", "flag_fairness", "score_fairness"]
+
+
+def _flags_from_counts(counts):
+    """Rows for groups with (flagged, total) counts."""
+    flag, group = [], []
+    for name, (flagged, total) in counts.items():
+        flag += [1] * flagged + [0] * (total - flagged)
+        group += [name] * total
+    return np.array(flag), np.array(group)
+
+
+# ---------------------------------------------------------------- scipy docs
+def test_wasserstein_scipy_documentation_examples():
+    # scipy.stats.wasserstein_distance documentation, Examples section.
+    assert wasserstein_raw([0, 1, 3], [5, 6, 8]) == pytest.approx(5.0, abs=1e-12)
+    assert wasserstein_raw([0, 1], [0, 1], [3, 1], [2, 2]) == pytest.approx(0.25, abs=1e-12)
+    assert wasserstein_raw([3.4, 3.9, 7.5, 7.8], [4.5, 1.4], [1.4, 0.9, 3.1, 7.2], [3.2, 3.5]) == pytest.approx(
+        4.0781331438047861, abs=1e-12)
+
+
+def test_score_distance_raw_and_ks_match_scipy():
+    # Reference library: scipy.stats.wasserstein_distance and ks_2samp on the two groups.
+    rng = np.random.default_rng(1)
+    score = np.round(rng.normal(size=600), 1)  # rounding creates ties
+    group = rng.choice(["x", "y"], 600)
+    label = (rng.random(600) < 0.2).astype(int)
+    result = evaluate(["score_fairness"], label, score, None, group)
+    a, b = score[group == "x"], score[group == "y"]
+    assert result.values["score_distance_raw"] == pytest.approx(stats.wasserstein_distance(a, b), abs=1e-12)
+    assert result.values["score_ks"] == pytest.approx(stats.ks_2samp(a, b).statistic, abs=1e-12)
+    # score_distance is scipy's distance applied to pooled empirical-CDF values.
+    pooled = stats.rankdata(score, method="max") / len(score)
+    assert result.values["score_distance"] == pytest.approx(
+        stats.wasserstein_distance(pooled[group == "x"], pooled[group == "y"]), abs=1e-12)
+
+
+# ---------------------------------------------------------------- scikit-learn
+def test_sklearn_docstring_example():
+    # scikit-learn docstrings of roc_auc_score / average_precision_score: y=[0,0,1,1], scores [0.1,0.4,0.35,0.8].
+    assert auroc([0, 0, 1, 1], [0.1, 0.4, 0.35, 0.8]) == pytest.approx(0.75)
+    assert average_precision([0, 0, 1, 1], [0.1, 0.4, 0.35, 0.8]) == pytest.approx(5 / 6)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_detection_and_group_auroc_match_sklearn_with_ties(seed):
+    rng = np.random.default_rng(seed)
+    n = 500
+    label = (rng.random(n) < 0.15).astype(int)
+    score = np.round(rng.normal(size=n) + label, 1)
+    group = rng.choice(["p", "q"], n)
+    flag = score >= np.quantile(score, 0.9)
+    v = evaluate(ALL, label, score, flag, group).values
+    # Reference library: scikit-learn metrics.
+    assert v["auroc"] == pytest.approx(roc_auc_score(label, score), abs=1e-12)
+    assert v["average_precision"] == pytest.approx(average_precision_score(label, score), abs=1e-12)
+    for g in ("p", "q"):
+        m = group == g
+        assert v[f"auroc/{g}"] == pytest.approx(roc_auc_score(label[m], score[m]), abs=1e-12)
+    cross = np.r_[score[(group == "p") & (label == 1)], score[(group == "q") & (label == 0)]]
+    cross_label = np.r_[np.ones(((group == "p") & (label == 1)).sum()), np.zeros(((group == "q") & (label == 0)).sum())]
+    assert v["cross_auroc/p_vs_q"] == pytest.approx(roc_auc_score(cross_label, cross), abs=1e-12)
+    from sklearn.metrics import f1_score, precision_score, recall_score
+    assert v["flag_precision"] == pytest.approx(precision_score(label, flag))
+    assert v["flag_recall"] == pytest.approx(recall_score(label, flag))
+    assert v["flag_f1"] == pytest.approx(f1_score(label, flag))
+
+
+def test_precision_at_k_without_ties():
+    label = np.array([1, 0, 1, 0, 0, 1, 0, 0])
+    score = np.array([9, 8, 7, 6, 5, 4, 3, 2], dtype=float)
+    # k = 3 anomalies; the top 3 scores hold 2 of them.
+    assert evaluate(["detection"], label, score, None, ["a", "b"] * 4).values["precision_at_k"] == pytest.approx(2 / 3)
+
+
+# ---------------------------------------------------------------- four-fifths rule
+def test_eeoc_four_fifths_worked_example():
+    # US EEOC Uniform Guidelines, 29 CFR 1607.4(D), and the official Questions and
+    # Answers example: selection rates 60%, 45%, 48%, 51% against the highest (60%)
+    # give 0.75 (adverse impact), 0.80 and 0.85 (not adverse impact).
+    for rate, expected_ratio, passes in [(45, 0.75, 0.0), (48, 0.80, 1.0), (51, 0.85, 1.0)]:
+        flag, group = _flags_from_counts({"top": (60, 100), "other": (rate, 100)})
+        v = evaluate(["flag_fairness"], np.zeros(len(flag), int), None, flag, group).values
+        assert v["flag_rate_ratio"] == pytest.approx(expected_ratio)
+        assert v["four_fifths_pass"] == passes  # exactly 0.8 passes
+    flag, group = _flags_from_counts({"a": (60, 100), "b": (45, 100), "c": (48, 100), "d": (51, 100)})
+    assert flag_rate_ratio(flag, group) == pytest.approx(0.75)
+    assert flag_rates(flag, group) == {"a": 0.6, "b": 0.45, "c": 0.48, "d": 0.51}
+
+
+def test_two_proportion_z_and_fisher_against_scipy():
+    # 48/80 vs 12/40 flagged: pooled z about 3.098, two-sided p about 0.00195; Fisher
+    # two-sided p about 0.00341 (issue check values, cross-checked with scipy.stats below).
+    z, p = two_proportion_z(48, 80, 12, 40)
+    assert z == pytest.approx(3.098, abs=5e-4)
+    assert p == pytest.approx(0.00195, abs=1e-5)
+    assert p == pytest.approx(2 * stats.norm.sf(z), rel=1e-12)
+    flag, group = _flags_from_counts({"high": (48, 80), "low": (12, 40)})
+    v = evaluate(["flag_fairness"], np.zeros(len(flag), int), None, flag, group)
+    assert v.values["worst_pair_z"] == pytest.approx(z)
+    assert v.values["worst_pair_fisher_p"] == pytest.approx(stats.fisher_exact([[48, 32], [12, 28]]).pvalue)
+    assert v.values["worst_pair_fisher_p"] == pytest.approx(0.00341, abs=1e-5)
+    assert v.notes["flag_rate_ratio.pair"] == "low vs high"
+
+
+def test_flips_to_parity_is_the_fewest_moves():
+    rng = np.random.default_rng(0)
+    for _ in range(200):
+        rows = rng.integers(20, 200, size=rng.integers(2, 5))
+        flagged = np.array([rng.integers(0, r // 2 + 1) for r in rows])
+        if flagged.sum() == 0:
+            continue
+        rate = flagged / rows
+        lo, hi = rate.argmin(), rate.argmax()
+        # Brute force in exact integer arithmetic: try m = 0, 1, 2, ... between the worst pair.
+        expected = float("nan")
+        for m in range(0, flagged[hi] + 1):
+            if flagged[lo] + m <= rows[lo] and 5 * (flagged[lo] + m) * rows[hi] >= 4 * (flagged[hi] - m) * rows[lo]:
+                expected = float(m)
+                break
+        assert flips_to_parity(flagged, rows) == pytest.approx(expected, nan_ok=True)
+
+
+# ---------------------------------------------------------------- leakage, overlap
+def test_leakage_auroc_detects_group_information():
+    rng = np.random.default_rng(0)
+    group = rng.choice(["a", "b", "c"], 600)
+    noise = rng.normal(size=(600, 4))
+    informative = noise + 3 * (group[:, None] == np.array(["a", "b", "c"])[None, :4 - 1]).repeat(1, axis=1)[:, [0, 1, 2, 0]]
+    assert leakage_auroc(informative, group) > 0.95
+    assert abs(leakage_auroc(noise, group) - 0.5) < 0.08
+
+
+def test_flag_overlap_is_jaccard():
+    # Reference library: scikit-learn's jaccard_score on boolean vectors.
+    from sklearn.metrics import jaccard_score
+
+    rng = np.random.default_rng(3)
+    a, b = rng.random(100) < 0.2, rng.random(100) < 0.3
+    assert flag_overlap(a, b) == pytest.approx(jaccard_score(a, b))
+
+
+# ---------------------------------------------------------------- properties
+scores = st.lists(st.floats(-100, 100, allow_nan=False), min_size=8, max_size=60)
+
+
+@pytest.mark.filterwarnings("ignore::evenflag.metrics.inputs.UndefinedMetricWarning")
+@settings(max_examples=60, deadline=None)
+@given(scores, st.randoms(use_true_random=False))
+def test_relabelling_groups_leaves_ratios_unchanged(values, random):
+    n = len(values)
+    group = np.array([random.choice(["u", "v", "w"]) for _ in range(n)])
+    group[:2] = ["u", "v"]
+    flag = np.array(values) > np.median(values)
+    renamed = np.array([{"u": "w2", "v": "u2", "w": "v2"}[g] for g in group])
+    for key in ("flag_rate_ratio", "flag_rate_gap"):
+        a = evaluate(["flag_fairness"], np.zeros(n, int), values, flag, group).values[key]
+        b = evaluate(["flag_fairness"], np.zeros(n, int), values, flag, renamed).values[key]
+        assert a == pytest.approx(b, nan_ok=True)
+        if key == "flag_rate_ratio" and not np.isnan(a):
+            assert 0.0 <= a <= 1.0
+
+
+@settings(max_examples=60, deadline=None)
+@given(scores)
+def test_score_distance_invariant_to_increasing_transform(values):
+    score = np.array(values)
+    group = np.array(["a", "b"] * (len(score) // 2) + ["a"] * (len(score) % 2))
+    transformed = np.exp(score / 50.0) * 3 + 1
+    # Floating point can merge nearly equal values; the property is about strictly increasing maps.
+    assume(len(np.unique(transformed)) == len(np.unique(score)))
+    assert score_distance(score, group) == pytest.approx(score_distance(transformed, group), abs=1e-12)
+    assert score_ks(score, group) == pytest.approx(score_ks(transformed, group), abs=1e-12)
+
+
+@settings(max_examples=30, deadline=None)
+@given(scores)
+def test_identical_group_distributions_give_zero(values):
+    score = np.array(values + values)
+    group = np.array(["a"] * len(values) + ["b"] * len(values))
+    assert score_distance(score, group) == pytest.approx(0.0, abs=1e-12)
+    assert score_ks(score, group) == pytest.approx(0.0, abs=1e-12)
+
+
+# ---------------------------------------------------------------- bootstrap
+def _sample(n=3000, seed=0):
+    rng = np.random.default_rng(seed)
+    label = (rng.random(n) < 0.1).astype(int)
+    group = rng.choice(["a", "b"], n, p=[0.7, 0.3])
+    score = rng.normal(size=n) + 1.5 * label + 0.4 * (group == "b")
+    return label, score, score >= np.quantile(score, 0.9), group
+
+
+def test_bootstrap_intervals_bracket_estimates_and_are_seeded():
+    label, score, flag, group = _sample()
+    one = evaluate(ALL, label, score, flag, group, n_bootstrap=200, seed=4).values
+    two = evaluate(ALL, label, score, flag, group, n_bootstrap=200, seed=4).values
+    other = evaluate(ALL, label, score, flag, group, n_bootstrap=200, seed=5).values
+    for key in ("auroc", "flag_rate_ratio", "score_distance", "false_flag_gap", "average_precision"):
+        assert one[f"{key}.ci_low"] <= one[key] <= one[f"{key}.ci_high"]
+        assert one[f"{key}.ci_low"] < one[f"{key}.ci_high"]
+        assert one[f"{key}.ci_low"] == two[f"{key}.ci_low"]
+    assert one["auroc.ci_low"] != other["auroc.ci_low"]
+
+
+def test_bootstrap_matches_a_plain_loop_on_the_same_draws():
+    # The vectorised weights must give exactly what resampling rows and
+    # recomputing with scikit-learn gives, draw for draw.
+    from evenflag.metrics.bootstrap import resample_weights
+
+    label, score, flag, group = _sample(n=400, seed=2)
+    inputs = MetricInput.build(label, score, flag, group)
+    weights = next(resample_weights(inputs, 5, np.random.default_rng(0)))
+    from evenflag.metrics.detection import detection_from_counts
+
+    batched = detection_from_counts(inputs.counts(weights))["auroc"]
+    for row, w in enumerate(weights):
+        rows = np.repeat(np.arange(len(label)), w.astype(int))
+        assert batched[row] == pytest.approx(roc_auc_score(label[rows], score[rows]), abs=1e-6)
+        strata = group[rows].astype(object) + label[rows].astype(str)
+        original = group.astype(object) + label.astype(str)
+        assert sorted(np.unique(strata, return_counts=True)[1]) == sorted(np.unique(original, return_counts=True)[1])
+
+
+# ---------------------------------------------------------------- undefined and bad input
+def test_one_label_only_gives_nan_with_a_warning():
+    with pytest.warns(UndefinedMetricWarning, match="auroc is undefined"):
+        v = evaluate(ALL, [0, 0, 0, 0], [1, 2, 3, 4], [0, 1, 0, 1], ["a", "a", "b", "b"]).values
+    assert np.isnan(v["auroc"]) and v["flag_rate_ratio"] == 1.0
+
+
+def test_group_without_anomalies_gives_nan_hit_rate():
+    with pytest.warns(UndefinedMetricWarning, match="hit_rate/b is undefined"):
+        v = evaluate(["flag_fairness"], [1, 0, 0, 0], [1, 2, 3, 4], [1, 0, 0, 1], ["a", "a", "b", "b"]).values
+    assert np.isnan(v["hit_rate/b"]) and np.isnan(v["hit_rate_gap"])
+
+
+def test_constant_scores_are_defined():
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UndefinedMetricWarning)
+        v = evaluate(["detection", "score_fairness"], [1, 0, 1, 0], [2, 2, 2, 2], [1, 0, 1, 0], ["a", "a", "b", "b"]).values
+    assert v["auroc"] == 0.5 and v["score_distance"] == 0.0 and v["score_ks"] == 0.0
+
+
+def test_single_group_is_an_input_error():
+    with pytest.raises(MetricInputError, match="single value"):
+        evaluate(ALL, [0, 1], [0.1, 0.2], [0, 1], ["a", "a"])
+
+
+def test_length_mismatch_is_an_input_error():
+    with pytest.raises(MetricInputError, match=r"score has shape \(3,\); expected \(2,\)"):
+        evaluate(ALL, [0, 1], [0.1, 0.2, 0.3], [0, 1], ["a", "b"])
