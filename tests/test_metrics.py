@@ -269,3 +269,18 @@ def test_single_group_is_an_input_error():
 def test_length_mismatch_is_an_input_error():
     with pytest.raises(MetricInputError, match=r"score has shape \(3,\); expected \(2,\)"):
         evaluate(ALL, [0, 1], [0.1, 0.2, 0.3], [0, 1], ["a", "b"])
+
+
+def test_binned_bootstrap_agrees_with_exact_bootstrap(monkeypatch):
+    # Large inputs resample pooled cells instead of rows; the intervals must
+    # agree with the row-level bootstrap to a small share of their width.
+    from evenflag.metrics import bootstrap
+
+    label, score, flag, group = _sample(n=30_000, seed=6)
+    binned = evaluate(ALL, label, score, flag, group, n_bootstrap=200, seed=1).values
+    monkeypatch.setattr(bootstrap, "EXACT_MAX_ROWS", 10**9)
+    exact = evaluate(ALL, label, score, flag, group, n_bootstrap=200, seed=1).values
+    for key in ("auroc", "average_precision", "flag_rate_ratio", "false_flag_gap", "score_distance", "score_ks"):
+        width = exact[f"{key}.ci_high"] - exact[f"{key}.ci_low"]
+        for end in ("ci_low", "ci_high"):
+            assert abs(binned[f"{key}.{end}"] - exact[f"{key}.{end}"]) < 0.3 * width, key

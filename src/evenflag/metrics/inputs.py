@@ -129,6 +129,37 @@ class MetricInput:
                 blocks[:, c // 2, c % 2, :] = summed
         return Counts(total=total, flagged=flagged, blocks=blocks, values=values, group_names=self.group_names)
 
+    def binned_cells(self, n_bins: int):
+        """Row counts per (group, label, score bin, flag), bins cut at pooled score
+        quantiles (tied scores always share a bin), and each bin's mean score.
+
+        Used by the bootstrap on large inputs: a resample inside a group x label
+        stratum is then one multinomial draw over that stratum's cells.
+        """
+        order, starts, values, block = self._index()
+        n = len(self.label)
+        # A block (distinct score) goes to the bin of the sorted position where it starts.
+        block_bin = np.minimum((starts * n_bins) // n, n_bins - 1)
+        _, block_bin = np.unique(block_bin, return_inverse=True)
+        bins = int(block_bin.max()) + 1
+        row_bin = block_bin[block]
+        cell = ((self.group * 2 + self.label) * bins + row_bin) * 2 + self.flag
+        cells = np.bincount(cell, minlength=self.n_groups * 2 * bins * 2).reshape(self.n_groups, 2, bins, 2)
+        bin_mean = np.bincount(row_bin, weights=self.score, minlength=bins) / np.bincount(row_bin, minlength=bins)
+        return cells, bin_mean
+
+
+def counts_from_cells(cells: np.ndarray, bin_mean: np.ndarray, group_names: list[str]) -> "Counts":
+    """Counts for a batch of (B, G, 2, bins, 2) cell tables (last axis = flag)."""
+    cells = cells.astype(np.float64)
+    return Counts(
+        total=cells.sum(axis=(3, 4)),
+        flagged=cells[..., 1].sum(axis=3),
+        blocks=cells.sum(axis=4),
+        values=bin_mean,
+        group_names=group_names,
+    )
+
 
 @dataclass
 class Counts:

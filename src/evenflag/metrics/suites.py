@@ -21,10 +21,10 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from evenflag.errors import ConfigError
-from evenflag.metrics.bootstrap import percentile_interval, resample_weights
+from evenflag.metrics import bootstrap
 from evenflag.metrics.detection import detection_from_counts
 from evenflag.metrics.flag_fairness import flag_fairness_from_counts, flag_tests
-from evenflag.metrics.inputs import MetricInput, UndefinedMetricWarning
+from evenflag.metrics.inputs import MetricInput, UndefinedMetricWarning, counts_from_cells
 from evenflag.metrics.leakage import leakage_auroc
 from evenflag.metrics.score_fairness import score_fairness_from_counts
 
@@ -105,16 +105,35 @@ def evaluate(families, label, score, flag, group, embedding=None, n_bootstrap: i
             warnings.warn(f"{key} is undefined ({_reason(key)}); reported as NaN", UndefinedMetricWarning, stacklevel=2)
 
     if n_bootstrap > 0 and batched:
-        samples: dict[str, list[np.ndarray]] = {}
-        rng = np.random.default_rng(seed)
-        with np.errstate(all="ignore"):
-            for weights in resample_weights(inputs, n_bootstrap, rng):
-                chunk_counts = inputs.counts(weights)
-                for family in batched:
-                    for key, value in BATCHED[family](chunk_counts).items():
-                        samples.setdefault(key, []).append(value)
-        for key, parts in samples.items():
-            low, high = percentile_interval(np.concatenate(parts), level)
-            values[f"{key}.ci_low"] = low
-            values[f"{key}.ci_high"] = high
+        values.update(_bootstrap_intervals(inputs, batched, values, n_bootstrap, seed, level))
     return SuiteResult(values=values, notes=notes)
+
+
+def _bootstrap_intervals(inputs: MetricInput, families, point: dict, n_bootstrap: int, seed: int, level: float):
+    rng = np.random.default_rng(seed)
+    samples: dict[str, list[np.ndarray]] = {}
+    shift: dict[str, float] = {}
+
+    def collect(counts):
+        for family in families:
+            for key, value in BATCHED[family](counts).items():
+                samples.setdefault(key, []).append(value)
+
+    with np.errstate(all="ignore"):
+        if len(inputs.label) <= bootstrap.EXACT_MAX_ROWS:
+            for weights in bootstrap.resample_weights(inputs, n_bootstrap, rng):
+                collect(inputs.counts(weights))
+        else:
+            cells, bin_mean = inputs.binned_cells(bootstrap.N_BINS)
+            binned_point = counts_from_cells(cells[None], bin_mean, inputs.group_names)
+            for family in families:
+                for key, value in BATCHED[family](binned_point).items():
+                    shift[key] = point[key] - float(value[0])
+            for chunk in bootstrap.resample_cells(cells, n_bootstrap, rng):
+                collect(counts_from_cells(chunk, bin_mean, inputs.group_names))
+    out = {}
+    for key, parts in samples.items():
+        low, high = bootstrap.percentile_interval(np.concatenate(parts), level)
+        offset = shift.get(key, 0.0)
+        out[f"{key}.ci_low"], out[f"{key}.ci_high"] = low + offset, high + offset
+    return out
