@@ -1,0 +1,106 @@
+"""The detector contract and how a config names a detector.
+
+A detector is any class with
+
+* ``fit(X, group=None) -> self``: learn from training rows (float32 array);
+  ``group`` is the group value of each row, for detectors that use it;
+* ``anomaly_score(X) -> 1-d float array``: higher = more anomalous;
+* optionally ``embed(X) -> 2-d array``: the learned representation.
+
+Learned state lives in attributes ending in ``_``. A detector that takes a
+``seed`` argument gets the run's seed.
+
+A config names a detector by ``_target_`` (an import path ``pkg.mod.Class``)
+or by ``name``: a built-in name, or one registered by another package under
+the entry-point group ``evenflag.detectors``.
+"""
+
+from __future__ import annotations
+
+import importlib
+import inspect
+from importlib.metadata import entry_points
+from typing import Any, Protocol, runtime_checkable
+
+import numpy as np
+
+from evenflag.errors import ConfigError, UnknownNameError
+
+ENTRY_POINT_GROUP = "evenflag.detectors"
+
+BUILT_IN = {
+    "isolation_forest": "evenflag.detectors.classic:IsolationForestDetector",
+    "sklearn": "evenflag.detectors.classic:SklearnDetector",
+    "autoencoder": "evenflag.detectors.neural:AutoencoderDetector",
+    "deep_svdd": "evenflag.detectors.neural:DeepSVDDDetector",
+    "adversarial": "evenflag.detectors.neural:AdversarialDetector",
+}
+
+
+@runtime_checkable
+class Detector(Protocol):
+    def fit(self, X: np.ndarray, group: np.ndarray | None = None) -> "Detector": ...
+
+    def anomaly_score(self, X: np.ndarray) -> np.ndarray: ...
+
+
+def import_object(path: str, what: str = "detector"):
+    """Import ``pkg.mod.Name`` or ``pkg.mod:Name``."""
+    module_name, sep, attr = path.partition(":")
+    if not sep:
+        module_name, _, attr = path.rpartition(".")
+    try:
+        return getattr(importlib.import_module(module_name), attr)
+    except (ImportError, AttributeError, ValueError) as exc:
+        raise UnknownNameError(f"{what} '{path}' could not be imported ({exc}); check the import path") from exc
+
+
+def registered_names() -> dict[str, str]:
+    names = dict(BUILT_IN)
+    for entry in entry_points(group=ENTRY_POINT_GROUP):
+        names.setdefault(entry.name, entry.value)
+    return names
+
+
+def resolve_detector_class(name_or_path: str):
+    """A detector class from a registered name or an import path."""
+    names = registered_names()
+    if name_or_path in names:
+        return import_object(names[name_or_path])
+    if "." in name_or_path or ":" in name_or_path:
+        return import_object(name_or_path)
+    raise UnknownNameError(f"unknown detector '{name_or_path}'; registered names: {', '.join(sorted(names))}")
+
+
+def _accepts(cls, parameter: str) -> bool:
+    try:
+        params = inspect.signature(cls.__init__).parameters
+    except (TypeError, ValueError):
+        return False
+    return parameter in params or any(p.kind is p.VAR_KEYWORD for p in params.values())
+
+
+def build_detector(config: dict[str, Any], seed: int | None = None):
+    """Instantiate a detector from its config mapping (``name`` or ``_target_``
+    plus constructor arguments); unknown arguments are refused with the list of
+    allowed ones."""
+    config = dict(config)
+    target = config.pop("_target_", None)
+    name = config.pop("name", None)
+    if not target and not name:
+        raise ConfigError("detector config needs 'name' (a registered detector) or '_target_' (an import path)")
+    cls = resolve_detector_class(target or name)
+    signature = inspect.signature(cls.__init__)
+    allowed = [p for p in signature.parameters if p != "self"]
+    if not any(p.kind is p.VAR_KEYWORD for p in signature.parameters.values()):
+        unknown = [k for k in config if k not in allowed]
+        if unknown:
+            raise ConfigError(
+                f"detector '{name or target}' has no setting {unknown}; allowed settings: {', '.join(allowed) or 'none'}"
+            )
+    if seed is not None and "seed" not in config and _accepts(cls, "seed"):
+        config["seed"] = seed
+    try:
+        return cls(**config)
+    except (TypeError, ValueError) as exc:
+        raise ConfigError(f"detector '{name or target}': {exc}") from exc

@@ -1,0 +1,1 @@
+"""Runs and sweeps: configuration, execution, provenance and tracking."""

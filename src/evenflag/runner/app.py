@@ -1,0 +1,269 @@
+"""The ``evenflag run`` entry point: validation, the Hydra app, the sweep summary.
+
+``launch`` checks every override before any job starts (one clear line per
+mistake), creates the tracking store once (several processes creating a new
+SQLite store at once crash), closes runs left RUNNING by a killed sweep,
+runs the Hydra app, then prints the summary and exits non-zero if any run
+failed.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import sys
+import tempfile
+import time
+import traceback
+from pathlib import Path
+
+import hydra
+from omegaconf import DictConfig, OmegaConf
+
+from evenflag.errors import ConfigError, EvenflagError
+from evenflag.paths import config_dir
+from evenflag.runner import ledger
+from evenflag.runner.config import register
+
+register()
+
+PASS_THROUGH = ("--help", "-h", "--hydra-help", "--info", "-i", "--cfg", "-c", "--shell-completion", "-sc",
+                "--version", "--resolve", "-p", "--package")
+
+
+@hydra.main(config_path=str(config_dir()), config_name="config", version_base="1.3")
+def hydra_app(cfg: DictConfig) -> None:
+    from evenflag.runner.job import run_job
+
+    run_job(cfg)
+
+
+def launch(argv: list[str]) -> int:
+    """Validate, prepare the store, run Hydra, summarise. Returns the exit code."""
+    if any(a in PASS_THROUGH or a.split("=")[0] in PASS_THROUGH for a in argv):
+        return _call_hydra(argv)
+    multirun = any(a in ("-m", "--multirun") for a in argv)
+    overrides, extra_dirs = _split_args(argv)
+    combos = _single_value_combinations(overrides)
+    first = None
+    for combo in combos:
+        cfg = _compose(combo, extra_dirs)
+        first = first or cfg
+    if not multirun and len(combos) > 1:
+        raise ConfigError("comma-separated values sweep several runs; add -m (evenflag run -m ...)")
+    total = _count_jobs(overrides, first) if multirun else 1
+
+    from evenflag.runner.tracking import Tracker, ui_command
+
+    tracker = Tracker(first.tracking.uri, first.study, first.tracking.artifact_root)
+    tracker.experiment_id  # creates the store and the study once, before any job
+    closed = tracker.close_stale_runs()
+    if closed:
+        print(f"marked {closed} run(s) left RUNNING by an interrupted launch as KILLED")
+
+    with tempfile.TemporaryDirectory(prefix="evenflag-ledger-") as folder:
+        path = Path(folder) / "ledger.jsonl"
+        os.environ[ledger.LEDGER_ENV] = str(path)
+        os.environ[ledger.TOTAL_ENV] = str(total)
+        os.environ[ledger.START_ENV] = str(time.time())
+        # Jobs write the store the launcher prepared, even in other processes.
+        os.environ["EVENFLAG_LAUNCH_DIR"] = str(Path.cwd())
+        code = _call_hydra(argv)
+        entries = ledger.read(path)
+    for key in (ledger.LEDGER_ENV, ledger.TOTAL_ENV, ledger.START_ENV):
+        os.environ.pop(key, None)
+
+    counts = {s: sum(e["status"] == s for e in entries) for s in ("done", "skipped", "failed")}
+    print(f"\nstudy '{first.study}': {counts['done']} done, {counts['skipped']} skipped (already finished), "
+          f"{counts['failed']} failed, of {total}")
+    for entry in entries:
+        if entry["status"] == "failed":
+            print(f"  failed: {entry['name']}: {entry['message']}")
+    if len(entries) < total:
+        print(f"  {total - len(entries)} job(s) did not report; see the log above")
+    print(f"results: {tracker.uri} (experiment '{first.study}')")
+    print(f"open them: {ui_command(tracker.uri)}")
+    if code:
+        return code
+    return 1 if counts["failed"] or len(entries) < total else 0
+
+
+def _call_hydra(argv: list[str]) -> int:
+    saved = sys.argv
+    sys.argv = ["evenflag run", *argv]
+    try:
+        hydra_app()
+    except SystemExit as exc:
+        return int(exc.code or 0) if isinstance(exc.code, int) else 1
+    finally:
+        sys.argv = saved
+    return 0
+
+
+def _split_args(argv: list[str]) -> tuple[list[str], list[str]]:
+    overrides, extra_dirs, skip = [], [], False
+    for i, arg in enumerate(argv):
+        if skip:
+            skip = False
+            continue
+        if arg in ("--config-dir", "-cd"):
+            extra_dirs.append(argv[i + 1])
+            skip = True
+        elif arg.startswith("--config-dir="):
+            extra_dirs.append(arg.split("=", 1)[1])
+        elif arg in ("--config-name", "-cn", "--config-path", "-cp"):
+            raise ConfigError(f"{arg} is not supported by evenflag run; put your configs in --config-dir instead")
+        elif not arg.startswith("-"):
+            overrides.append(arg)
+    return overrides, extra_dirs
+
+
+def _parse(overrides: list[str]):
+    from hydra.core.override_parser.overrides_parser import OverridesParser
+    from hydra.errors import OverrideParseException
+
+    try:
+        return OverridesParser.create().parse_overrides(overrides)
+    except OverrideParseException as exc:
+        raise ConfigError(f"cannot read override: {str(exc).splitlines()[0]}") from exc
+
+
+def _single_value_combinations(overrides: list[str]) -> list[list[str]]:
+    """The first value of every sweep, then each other value of each sweep on
+    its own: every value gets checked without composing the whole grid."""
+    parsed = _parse(overrides)
+    base, sweeps = [], []
+    for original, item in zip(overrides, parsed):
+        if item.is_sweep_override():
+            key = item.get_key_element()
+            values = [f"{key}={v}" for v in item.sweep_string_iterator()]
+            sweeps.append((len(base), values))
+            base.append(values[0])
+        else:
+            base.append(original)
+    combos = [base]
+    for index, values in sweeps:
+        for value in values[1:]:
+            combo = list(base)
+            combo[index] = value
+            combos.append(combo)
+    return combos
+
+
+def _count_jobs(overrides: list[str], cfg: DictConfig) -> int:
+    total = 1
+    seen = set()
+    for item in _parse(overrides):
+        if item.is_sweep_override():
+            total *= len(list(item.sweep_string_iterator()))
+            seen.add(item.get_key_element())
+    params = OmegaConf.select(cfg, "hydra.sweeper.params") or {}
+    for key, value in params.items():
+        if key in seen:
+            continue
+        parsed = _parse([f"{key}={value}"])[0]
+        total *= len(list(parsed.sweep_string_iterator())) if parsed.is_sweep_override() else 1
+    return max(total, 1)
+
+
+def _compose(overrides: list[str], extra_dirs: list[str]) -> DictConfig:
+    from hydra import compose, initialize_config_dir
+    from hydra.errors import HydraException, MissingConfigException
+    from omegaconf.errors import ConfigKeyError, OmegaConfBaseException, ValidationError
+
+    search = [f"hydra.searchpath=[{','.join('file://' + str(Path(d).resolve()) for d in extra_dirs)}]"] if extra_dirs else []
+    try:
+        with initialize_config_dir(config_dir=str(config_dir()), version_base="1.3"):
+            cfg = compose("config", overrides=search + overrides, return_hydra_config=True)
+    except MissingConfigException as exc:
+        raise ConfigError(_missing_option_message(exc, extra_dirs)) from exc
+    except (HydraException, OmegaConfBaseException) as exc:
+        raise ConfigError(_composition_message(exc, overrides, extra_dirs)) from exc
+    from evenflag.mitigation import check_kind
+    from evenflag.thresholds import POLICIES
+    from evenflag.data.protocol import PROTOCOL_KINDS
+
+    if cfg.threshold.policy not in POLICIES:
+        raise ConfigError(f"threshold.policy '{cfg.threshold.policy}' is unknown; use one of {list(POLICIES)}")
+    if cfg.protocol.kind not in PROTOCOL_KINDS:
+        raise ConfigError(f"protocol.kind '{cfg.protocol.kind}' is unknown; use one of {list(PROTOCOL_KINDS)}")
+    check_kind(cfg.mitigation.kind)
+    from evenflag.detectors.base import resolve_detector_class
+
+    detector = cfg.detector
+    if not detector.get("_target_") and not detector.get("name"):
+        raise ConfigError("detector config needs 'name' or '_target_'")
+    resolve_detector_class(detector.get("_target_") or detector.get("name"))
+    return cfg
+
+
+def _options(group: str, extra_dirs: list[str]) -> list[str]:
+    names = set()
+    for folder in [config_dir(), *map(Path, extra_dirs)]:
+        names.update(p.stem for p in (folder / group).glob("*.yaml"))
+    return sorted(names)
+
+
+def _missing_option_message(exc, extra_dirs) -> str:
+    text = str(exc)
+    import re
+
+    match = re.search(r"Could not find '([\w/]+)/([^']+)'", text) or re.search(r"In '[^']*': Could not find '([\w/]+)/([^']+)'", text)
+    if match:
+        group, name = match.group(1), match.group(2)
+        return f"unknown {group} '{name}'; valid names: {', '.join(_options(group, extra_dirs))}"
+    return text.splitlines()[0]
+
+
+def _composition_message(exc, overrides: list[str], extra_dirs: list[str]) -> str:
+    import dataclasses
+    import re
+
+    from evenflag.runner.config import GROUP_SCHEMAS
+
+    text = " ".join(f"{exc} {exc.__cause__ or ''}".split())
+    key = re.search(r"full_key: ([\w.]+)", text)
+    unknown = re.search(r"Key '(\w+)' not in '(\w+)'", text) or re.search(r"Could not override '([\w.]+)'", text)
+    if unknown:
+        where = key.group(1) if key else unknown.group(1)
+        group = where.split(".")[0]
+        if group == "detector":
+            return f"unknown setting '{where}'; {_detector_settings(overrides, extra_dirs)}"
+        schema = GROUP_SCHEMAS.get(group)
+        allowed = [f.name for f in dataclasses.fields(schema)] if schema else []
+        if not allowed:
+            from evenflag.runner.config import RunConfig
+
+            allowed = [f.name for f in dataclasses.fields(RunConfig)]
+            return f"unknown setting '{where}'; top-level settings: {', '.join(allowed)}"
+        return f"unknown setting '{where}'; allowed settings of {group}: {', '.join(allowed)}"
+    wrong = re.search(r"Value '([^']*)' (?:of type '[\w.]+' )?could not be converted to (\w+)", text)
+    if wrong:
+        where = key.group(1) if key else "a setting"
+        return f"{where}: '{wrong.group(1)}' is not a valid {wrong.group(2).lower()}"
+    return text[:300]
+
+
+def _detector_settings(overrides: list[str], extra_dirs: list[str]) -> str:
+    """The settings the chosen detector class accepts, for an error message."""
+    import inspect
+
+    from evenflag.detectors.base import resolve_detector_class
+
+    kept = [o for o in overrides if not o.lstrip("+~").startswith("detector.")]
+    try:
+        cfg = _compose(kept, extra_dirs)
+        cls = resolve_detector_class(cfg.detector.get("_target_") or cfg.detector.get("name"))
+    except EvenflagError:
+        return "see configs/detector/ for each detector's settings"
+    names = [p for p in inspect.signature(cls.__init__).parameters if p not in ("self", "seed")]
+    return f"{cls.__name__} accepts: {', '.join(names)}"
+
+
+def format_exception(exc: BaseException) -> str:
+    """One line for the run's error tag: our messages as they are, others with their type."""
+    if isinstance(exc, EvenflagError):
+        return str(exc)
+    where = traceback.extract_tb(exc.__traceback__)[-1] if exc.__traceback__ else None
+    place = f" (at {Path(where.filename).name}:{where.lineno})" if where else ""
+    return f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}{place}"

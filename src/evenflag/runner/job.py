@@ -1,0 +1,97 @@
+"""One Hydra job: skip if already finished, else execute and track it.
+
+Nothing raised here escapes: a failing run is recorded as FAILED with a
+one-line reason and the sweep goes on.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from pathlib import Path
+
+from omegaconf import DictConfig, OmegaConf
+
+from evenflag.runner import ledger
+from evenflag.runner.provenance import fingerprint, flatten, git_state, library_versions
+from evenflag.runner.tracking import TAG, Tracker
+
+
+def _name(cfg: DictConfig) -> str:
+    detector = cfg.detector.get("name") or str(cfg.detector.get("_target_", "?")).rsplit(".", 1)[-1]
+    extra = f" {cfg.mitigation.kind}" if cfg.mitigation.kind != "none" else ""
+    weight = f" weight={cfg.detector.weight}" if "weight" in cfg.detector else ""
+    return f"{cfg.dataset.name} {detector}{weight}{extra} seed={cfg.seed}"
+
+
+def _output_dir() -> Path:
+    try:
+        from hydra.core.hydra_config import HydraConfig
+
+        return Path(HydraConfig.get().runtime.output_dir)
+    except ValueError:
+        return Path.cwd()
+
+
+def run_job(cfg: DictConfig) -> str:
+    from evenflag.runner.app import format_exception
+    from evenflag.runner.run import execute, limit_threads
+
+    started = time.time()
+    name = _name(cfg)
+    limit_threads(cfg.get("threads"))
+    launch_dir = Path(os.environ.get("EVENFLAG_LAUNCH_DIR", Path.cwd()))
+    resolved = OmegaConf.to_container(cfg, resolve=True)
+    tracker = run_id = None
+    try:
+        tracker = Tracker(cfg.tracking.uri, cfg.study, cfg.tracking.artifact_root, launch_dir)
+        from evenflag.data.registry import load_dataset, to_spec
+
+        data_sha = load_dataset(to_spec(resolved["dataset"])).sha256
+        fp = fingerprint(resolved, data_sha)
+        if not cfg.rerun:
+            existing = tracker.find_finished(fp)
+            if existing:
+                ledger.record({"status": "skipped", "name": name, "run_id": existing,
+                               "summary": f"finished before as run {existing[:8]}"})
+                return "skipped"
+        commit, dirty = git_state()
+        tags = {f"{TAG}fingerprint": fp, f"{TAG}data_sha256": data_sha, f"{TAG}git_commit": commit,
+                f"{TAG}git_dirty": str(dirty).lower(), f"{TAG}dataset": cfg.dataset.name,
+                **{f"{TAG}version.{k}": v for k, v in library_versions().items()},
+                **{str(k): str(v) for k, v in (cfg.tags or {}).items()}}
+        run_id = tracker.start(name, tags)
+        out = execute(cfg)
+        folder = _output_dir()
+        folder.mkdir(parents=True, exist_ok=True)
+        (folder / "config.yaml").write_text(OmegaConf.to_yaml(resolved))
+        out.scores.to_parquet(folder / "scores.parquet", index=False)
+        artifacts = folder / "artifacts"
+        artifacts.mkdir(exist_ok=True)
+        for file in ("config.yaml", "scores.parquet"):
+            os.replace(folder / file, artifacts / file)
+        params = flatten({k: v for k, v in resolved.items() if k not in ("tracking", "tags")})
+        metrics = {**out.metrics, **{f"time.{k}": v for k, v in out.timings.items()}}
+        notes = {f"{TAG}{k}": v for k, v in out.notes.items()}
+        notes[f"{TAG}groups"] = ",".join(map(str, out.dataset.group.cat.categories))
+        notes[f"{TAG}source"] = out.dataset.source
+        tracker.log(run_id, params, metrics, notes)
+        if out.history:
+            tracker.log_history(run_id, out.history)
+        tracker.log_artifacts(run_id, artifacts)
+        tracker.finish(run_id)
+        summary = ", ".join(f"{k} {out.metrics[k]:.3f}" for k in ("auroc", "flag_rate_ratio") if k in out.metrics)
+        ledger.record({"status": "done", "name": name, "run_id": run_id, "summary": summary,
+                       "seconds": round(time.time() - started, 2)})
+        return "done"
+    except Exception as exc:  # isolate the failure: record it, let the sweep go on
+        message = format_exception(exc)
+        if tracker is not None and run_id is not None:
+            try:
+                tracker.fail(run_id, message)
+            except Exception as tracking_exc:  # the store itself failed; say so, keep going
+                message += f" (and the failure could not be recorded: {format_exception(tracking_exc)})"
+        ledger.record({"status": "failed", "name": name, "run_id": run_id, "message": message})
+        if not os.environ.get(ledger.LEDGER_ENV):
+            print(f"evenflag: run failed: {message}")
+        return "failed"

@@ -1,0 +1,48 @@
+"""The sweep ledger: one JSON line per finished job, shared by every job of a
+launch (whatever process or launcher runs it), read back for progress and the
+final summary."""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from pathlib import Path
+
+LEDGER_ENV = "EVENFLAG_LEDGER"
+TOTAL_ENV = "EVENFLAG_SWEEP_TOTAL"
+START_ENV = "EVENFLAG_SWEEP_START"
+
+
+def record(entry: dict) -> None:
+    """Append one line (a single small O_APPEND write, safe across processes)
+    and print the progress line."""
+    path = os.environ.get(LEDGER_ENV)
+    if not path:
+        return
+    line = (json.dumps(entry, default=str) + "\n").encode()
+    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    try:
+        os.write(fd, line)
+    finally:
+        os.close(fd)
+    done = len(read(path))
+    total = int(os.environ.get(TOTAL_ENV, "0") or 0)
+    elapsed = time.time() - float(os.environ.get(START_ENV, time.time()))
+    eta = elapsed / done * (total - done) if total and done else 0.0
+    of = f"/{total}" if total else ""
+    detail = entry.get("summary") or entry.get("message") or ""
+    print(f"[{done}{of}] {entry['status']:<8} {entry.get('name', '')}  {detail}  "
+          f"elapsed {_clock(elapsed)}, eta {_clock(eta)}", flush=True)
+
+
+def read(path: str | Path) -> list[dict]:
+    path = Path(path)
+    if not path.exists():
+        return []
+    return [json.loads(line) for line in path.read_text().splitlines() if line.strip()]
+
+
+def _clock(seconds: float) -> str:
+    seconds = int(round(seconds))
+    return f"{seconds // 60}m{seconds % 60:02d}s" if seconds >= 60 else f"{seconds}s"
