@@ -61,6 +61,8 @@ def run_job(cfg: DictConfig) -> str:
                 **{f"{TAG}version.{k}": v for k, v in library_versions().items()},
                 **{str(k): str(v) for k, v in (cfg.tags or {}).items()}}
         run_id = tracker.start(name, tags)
+        # Params first, so a run that fails below still says what it was.
+        tracker.log(run_id, flatten({k: v for k, v in resolved.items() if k not in ("tracking", "tags")}), {}, {})
         out = execute(cfg)
         folder = _output_dir()
         folder.mkdir(parents=True, exist_ok=True)
@@ -70,12 +72,11 @@ def run_job(cfg: DictConfig) -> str:
         artifacts.mkdir(exist_ok=True)
         for file in ("config.yaml", "scores.parquet"):
             os.replace(folder / file, artifacts / file)
-        params = flatten({k: v for k, v in resolved.items() if k not in ("tracking", "tags")})
         metrics = {**out.metrics, **{f"time.{k}": v for k, v in out.timings.items()}}
         notes = {f"{TAG}{k}": v for k, v in out.notes.items()}
         notes[f"{TAG}groups"] = ",".join(map(str, out.dataset.group.cat.categories))
         notes[f"{TAG}source"] = out.dataset.source
-        tracker.log(run_id, params, metrics, notes)
+        tracker.log(run_id, {}, metrics, notes)
         if out.history:
             tracker.log_history(run_id, out.history)
         tracker.log_artifacts(run_id, artifacts)

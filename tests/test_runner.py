@@ -1,0 +1,185 @@
+"""The runner end to end: real Hydra multiruns, a real MLflow store, real launchers."""
+
+import os
+import socket
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from tests.runner_helpers import REPO, SMALL, client_for, evenflag, runs_of
+
+
+@pytest.fixture(scope="module")
+def sweep(tmp_path_factory):
+    """One 2 detectors x 2 seeds sweep, shared by the read-back tests."""
+    cwd = tmp_path_factory.mktemp("sweep")
+    result = evenflag(cwd, "run", "-m", *SMALL, "study=grid", "seed=0,1",
+                      "detector=isolation_forest,local_outlier_factor")
+    assert result.returncode == 0, result.stderr + result.stdout
+    return cwd, result
+
+
+def test_sweep_records_every_run(sweep):
+    cwd, result = sweep
+    client = client_for(cwd)
+    runs = runs_of(client, "grid")
+    assert len(runs) == 4 and {r.info.status for r in runs} == {"FINISHED"}
+    assert "4 done, 0 skipped" in result.stdout and "mlflow ui --backend-store-uri sqlite:///" in result.stdout
+    run = runs[0]
+    for key in ("auroc", "average_precision", "flag_rate_ratio", "flag_rate_gap", "false_flag_gap", "hit_rate_gap",
+                "score_distance", "score_ks", "flag_rate/coast", "flag_rate/inland"):
+        assert key in run.data.metrics, key
+    assert run.data.params["dataset.name"] == "synthetic_claims"
+    assert run.data.params["protocol.kind"] == "one_class"
+    tags = run.data.tags
+    for tag in ("fingerprint", "data_sha256", "git_commit", "git_dirty", "version.python", "version.numpy",
+                "version.torch", "version.scikit-learn", "version.evenflag"):
+        assert tags.get(f"evenflag.{tag}"), tag
+    assert tags["evenflag.status"] == "finished"
+    assert {r.data.tags["evenflag.fingerprint"] for r in runs}.__len__() == 4
+
+
+def test_sweep_artifacts_hold_scores_and_config(sweep):
+    cwd, _ = sweep
+    client = client_for(cwd)
+    run = runs_of(client, "grid")[0]
+    names = {a.path for a in client.list_artifacts(run.info.run_id)}
+    assert names == {"config.yaml", "scores.parquet"}
+    local = client.download_artifacts(run.info.run_id, "scores.parquet", str(cwd))
+    scores = pd.read_parquet(local)
+    assert list(scores.columns) == ["row_id", "label", "group", "score", "flag"]
+    assert scores["row_id"].is_unique and set(scores["group"]) == {"coast", "inland"}
+    # The logged metrics are the metrics of these very rows.
+    from sklearn.metrics import roc_auc_score  # reference library
+    assert run.data.metrics["auroc"] == pytest.approx(roc_auc_score(scores["label"], scores["score"]))
+
+
+def test_relaunch_skips_finished_runs(sweep):
+    cwd, _ = sweep
+    result = evenflag(cwd, "run", "-m", *SMALL, "study=grid", "seed=0,1", "detector=isolation_forest,local_outlier_factor")
+    assert result.returncode == 0
+    assert "0 done, 4 skipped" in result.stdout
+    assert len(runs_of(client_for(cwd), "grid")) == 4
+
+
+def test_rerun_forces_and_scores_are_deterministic(sweep):
+    cwd, _ = sweep
+    result = evenflag(cwd, "run", *SMALL, "study=grid", "seed=0", "detector=isolation_forest", "rerun=true")
+    assert result.returncode == 0 and "1 done" in result.stdout
+    client = client_for(cwd)
+    runs = [r for r in runs_of(client, "grid") if r.data.params["seed"] == "0"
+            and r.data.params["detector.name"] == "isolation_forest"]
+    assert len(runs) == 2
+    frames = [pd.read_parquet(client.download_artifacts(r.info.run_id, "scores.parquet", str(cwd / r.info.run_id)))
+              for r in runs]
+    pd.testing.assert_frame_equal(frames[0], frames[1])
+
+
+def test_failing_cell_is_isolated(tmp_path):
+    result = evenflag(tmp_path, "run", "-m", "--config-dir", str(REPO / "tests" / "configs"), *SMALL, "study=failing",
+                      "detector=fails_on_odd_seed", "seed=0,1,2")
+    assert result.returncode == 1
+    assert "2 done, 0 skipped (already finished), 1 failed" in result.stdout
+    assert "deliberate failure for seed 1" in result.stdout
+    runs = runs_of(client_for(tmp_path), "failing")
+    status = {r.data.params["seed"]: r.info.status for r in runs}
+    assert status == {"0": "FINISHED", "1": "FAILED", "2": "FINISHED"}
+    failed = next(r for r in runs if r.info.status == "FAILED")
+    assert "RuntimeError: deliberate failure for seed 1" in failed.data.tags["evenflag.error"]
+    # A relaunch runs only what is missing: the failed cell.
+    again = evenflag(tmp_path, "run", "-m", "--config-dir", str(REPO / "tests" / "configs"), *SMALL, "study=failing",
+                     "detector=fails_on_odd_seed", "seed=0,1,2")
+    assert "0 done, 2 skipped (already finished), 1 failed" in again.stdout
+
+
+def test_stale_running_run_is_closed_on_next_launch(tmp_path):
+    from mlflow.tracking import MlflowClient
+
+    db = tmp_path / "outputs" / "tracking"
+    db.mkdir(parents=True)
+    client = MlflowClient(tracking_uri=f"sqlite:///{db / 'mlflow.db'}")
+    experiment = client.create_experiment("stale")
+    finished = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    dead_pid = finished.stdout.strip()  # that process has exited
+    run = client.create_run(experiment, tags={"evenflag.host": socket.gethostname(), "evenflag.pid": dead_pid})
+    result = evenflag(tmp_path, "run", *SMALL, "study=stale")
+    assert result.returncode == 0 and "as KILLED" in result.stdout
+    assert client.get_run(run.info.run_id).info.status == "KILLED"
+
+
+def test_parallel_joblib_launcher(tmp_path):
+    result = evenflag(tmp_path, "run", "-m", "hydra/launcher=parallel", *SMALL, "study=par", "seed=0,1,2")
+    assert result.returncode == 0, result.stderr
+    runs = runs_of(client_for(tmp_path), "par")
+    assert len(runs) == 3 and {r.info.status for r in runs} == {"FINISHED"}
+    assert len({r.data.tags["evenflag.pid"] for r in runs}) >= 2  # really ran in worker processes
+
+
+def test_submitit_local_launcher_runs_two_jobs(tmp_path):
+    result = evenflag(tmp_path, "run", "-m", "hydra/launcher=local_processes", *SMALL, "study=sub", "seed=0,1")
+    assert result.returncode == 0, result.stderr
+    runs = runs_of(client_for(tmp_path), "sub")
+    assert len(runs) == 2 and {r.info.status for r in runs} == {"FINISHED"}
+
+
+def _free_port():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_sweep_to_an_mlflow_server_on_loopback(tmp_path):
+    import urllib.request
+
+    port = _free_port()
+    mlflow_bin = Path(sys.executable).with_name("mlflow")
+    server = subprocess.Popen(
+        [str(mlflow_bin), "server", "--host", "127.0.0.1", "--port", str(port), "--workers", "1",
+         "--backend-store-uri", f"sqlite:///{tmp_path / 'server.db'}",
+         "--default-artifact-root", (tmp_path / "server-artifacts").as_uri()],
+        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env={**os.environ, "MLFLOW_DISABLE_TELEMETRY": "true"})
+    uri = f"http://127.0.0.1:{port}"
+    try:
+        deadline = time.time() + 90
+        while True:
+            try:
+                urllib.request.urlopen(f"{uri}/health", timeout=2)
+                break
+            except OSError:
+                if time.time() > deadline or server.poll() is not None:
+                    pytest.fail("the MLflow server on loopback did not come up within 90 s")
+                time.sleep(0.5)
+        result = evenflag(tmp_path / "..", "run", "-m", *SMALL, "study=remote", "tracking=server",
+                          f"tracking.uri={uri}", "seed=0,1")
+        assert result.returncode == 0, result.stderr + result.stdout
+        from mlflow.tracking import MlflowClient
+
+        runs = runs_of(MlflowClient(tracking_uri=uri), "remote")
+        assert len(runs) == 2 and {r.info.status for r in runs} == {"FINISHED"}
+        assert "auroc" in runs[0].data.metrics
+    finally:
+        server.terminate()
+        server.wait(timeout=30)
+
+
+@pytest.mark.parametrize("args, expected", [
+    (["dataset=adlt"], "unknown dataset 'adlt'; valid names: adult, "),
+    (["detector=isolation_forst"], "unknown detector 'isolation_forst'; valid names: "),
+    (["protocol.test_fractoin=0.2"], "unknown setting 'protocol.test_fractoin'; allowed settings of protocol: kind, test_fraction"),
+    (["protocol.test_fraction=abc"], "protocol.test_fraction: 'abc' is not a valid float"),
+    (["detector.n_estimatorz=5"], "IsolationForestDetector accepts: n_estimators, max_samples, max_features"),
+    (["threshold.policy=top"], "threshold.policy 'top' is unknown"),
+    (["-m", "seed=0,1", "metrics=quik"], "unknown metrics 'quik'; valid names: default, quick"),
+    (["seed=0,1"], "add -m"),
+])
+def test_bad_overrides_give_one_line(tmp_path, args, expected):
+    result = evenflag(tmp_path, "run", *args)
+    assert result.returncode == 2
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and expected in lines[0], result.stderr
+    assert not (tmp_path / "outputs").exists()  # nothing half-written
