@@ -127,6 +127,32 @@ def cmd_datasets_show(args) -> int:
     return 0
 
 
+def cmd_report(args) -> int:
+    from pathlib import Path
+
+    from evenflag.report.build import ReportRequest, build_report
+    from evenflag.report.tables import DEFAULT_METRICS
+    from evenflag.runner.tracking import default_store
+
+    where = {}
+    for item in args.where:
+        key, sep, value = item.partition("=")
+        if not sep:
+            raise EvenflagError(f"--where takes KEY=VALUE, got '{item}'")
+        where[key] = value
+    uri = args.tracking_uri or default_store(Path.cwd())[0]
+    if uri.startswith("sqlite:///") and not Path(uri[len("sqlite:///"):]).exists():
+        raise EvenflagError(f"no tracking store at {uri}; run a sweep first (evenflag run -m ...) or pass --tracking-uri")
+    out = Path(args.out) if args.out else Path("outputs") / "reports" / "+".join(args.study)
+    request = ReportRequest(uri=uri, studies=args.study, where=where,
+                            metrics=args.metrics.split(",") if args.metrics else list(DEFAULT_METRICS),
+                            out=out, figures=not args.no_figures, memo=args.memo, html=args.html)
+    written = build_report(request)
+    print(written.pop("_markdown"))
+    print("written: " + ", ".join(str(p) for p in written.values()))
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="evenflag", description="Fairness benchmarks of anomaly detectors.")
     sub = parser.add_subparsers(dest="command", required=True)
@@ -148,6 +174,18 @@ def build_parser() -> argparse.ArgumentParser:
 
     run = sub.add_parser("run", help="one run, or a sweep with -m; arguments are Hydra overrides", add_help=False)
     run.set_defaults(func=None)
+    report = sub.add_parser("report", help="tables, figures and a memo from tracked runs (never re-trains)")
+    report.add_argument("--study", action="append", required=True, help="study name; repeat for several")
+    report.add_argument("--tracking-uri", default=None,
+                        help="MLflow tracking URI (default: the local store under outputs/tracking/)")
+    report.add_argument("--where", action="append", default=[], metavar="KEY=VALUE",
+                        help="keep runs whose param or tag KEY equals VALUE; repeatable")
+    report.add_argument("--metrics", default=None, help="comma-separated metric keys for the table columns")
+    report.add_argument("--out", default=None, help="output folder (default: outputs/reports/<study>)")
+    report.add_argument("--no-figures", action="store_true", help="tables only")
+    report.add_argument("--memo", action="store_true", help="also write memo.md: metadata, table, figures, reading, caution")
+    report.add_argument("--html", action="store_true", help="with --memo: also write memo.html")
+    report.set_defaults(func=cmd_report)
     check = sub.add_parser("check-detector", help="conformance checks for a detector plugin")
     check.add_argument("target", help="module:Class or a registered detector name")
     check.set_defaults(func=lambda a: _check_detector(a.target))

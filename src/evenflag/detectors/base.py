@@ -80,6 +80,18 @@ def _accepts(cls, parameter: str) -> bool:
     return parameter in params or any(p.kind is p.VAR_KEYWORD for p in params.values())
 
 
+def describe_detector(config: dict[str, Any]) -> str:
+    """A short label for tables and logs: the name, the estimator of the
+    scikit-learn wrapper, or the class of a ``_target_``."""
+    name = config.get("name") or str(config.get("_target_") or "?").rsplit(".", 1)[-1].rsplit(":", 1)[-1]
+    if name == "sklearn":
+        name = str(config.get("estimator") or "sklearn").rsplit(".", 1)[-1]
+    base = config.get("base")
+    if isinstance(base, dict) and base.get("name"):
+        name = f"{name} {base['name']}"
+    return name
+
+
 def build_detector(config: dict[str, Any], seed: int | None = None):
     """Instantiate a detector from its config mapping (``name`` or ``_target_``
     plus constructor arguments); unknown arguments are refused with the list of

@@ -18,7 +18,9 @@ from evenflag.runner.tracking import TAG, Tracker
 
 
 def _name(cfg: DictConfig) -> str:
-    detector = cfg.detector.get("name") or str(cfg.detector.get("_target_", "?")).rsplit(".", 1)[-1]
+    from evenflag.detectors.base import describe_detector
+
+    detector = describe_detector(OmegaConf.to_container(cfg.detector, resolve=True))
     extra = f" {cfg.mitigation.kind}" if cfg.mitigation.kind != "none" else ""
     weight = f" weight={cfg.detector.weight}" if "weight" in cfg.detector else ""
     return f"{cfg.dataset.name} {detector}{weight}{extra} seed={cfg.seed}"

@@ -1,0 +1,59 @@
+"""``evenflag report``: select studies, aggregate over seeds, write the outputs."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from evenflag.report.collect import RunTable, load_runs
+from evenflag.report.tables import DEFAULT_METRICS, aggregate, to_csv, to_latex, to_markdown
+
+CAUTION = (
+    "**Caution.** These numbers describe one detector on one data set under one protocol and threshold; "
+    "they change with the data, the protocol and the threshold. The four-fifths rule is a rule of thumb, "
+    "not a legal finding. Group-specific thresholds treat people differently by group and may be unlawful "
+    "in some places. Defer to local law, regulators and qualified counsel before acting on these results."
+)
+
+
+@dataclass
+class ReportRequest:
+    uri: str
+    studies: list[str]
+    where: dict[str, str] = field(default_factory=dict)
+    metrics: list[str] = field(default_factory=lambda: list(DEFAULT_METRICS))
+    out: Path = Path("outputs/reports")
+    figures: bool = True
+    memo: bool = False
+    html: bool = False
+
+
+def caption(runs: RunTable) -> str:
+    seeds = sorted(set(runs.runs["seed"]))
+    return (f"Study {', '.join(runs.studies)}: mean over seeds {', '.join(map(str, seeds))} "
+            f"with 95% t-interval half-width; best per dataset in bold.")
+
+
+def build_report(request: ReportRequest) -> dict[str, Path]:
+    runs = load_runs(request.uri, request.studies, request.where)
+    table = aggregate(runs.runs, request.metrics)
+    out = Path(request.out)
+    out.mkdir(parents=True, exist_ok=True)
+    written = {}
+    markdown = to_markdown(table, request.metrics)
+    written["table.md"] = out / "table.md"
+    written["table.md"].write_text(markdown)
+    written["table.tex"] = out / "table.tex"
+    written["table.tex"].write_text(to_latex(table, request.metrics, caption(runs)))
+    written["table.csv"] = out / "table.csv"
+    written["table.csv"].write_text(to_csv(table))
+    if request.figures:
+        from evenflag.report.figures import write_figures
+
+        written.update(write_figures(runs, table, out))
+    if request.memo:
+        from evenflag.report.memo import write_memo
+
+        written.update(write_memo(runs, table, request, written, html=request.html))
+    written["_markdown"] = markdown
+    return written
