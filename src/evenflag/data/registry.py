@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import copy
+import dataclasses
+import json
 from pathlib import Path
 from typing import Any
 
@@ -15,6 +18,7 @@ from evenflag.errors import ConfigError, UnknownNameError
 from evenflag.paths import config_dir
 
 _LOADED: dict[str, Dataset] = {}
+_SPECS: dict[str, DatasetSpec] = {}
 
 
 def dataset_config_dir() -> Path:
@@ -32,6 +36,16 @@ def to_spec(config: Any) -> DatasetSpec:
     """
     if isinstance(config, DatasetSpec):
         return config
+    memo_key = json.dumps(config, sort_keys=True, default=str) if isinstance(config, dict) else None
+    if memo_key in _SPECS:  # validating through OmegaConf costs ~10 ms; a sweep repeats it per job
+        return copy.deepcopy(_SPECS[memo_key])
+    spec = _validate(config)
+    if memo_key is not None:
+        _SPECS[memo_key] = copy.deepcopy(spec)
+    return spec
+
+
+def _validate(config: Any) -> DatasetSpec:
     try:
         merged = OmegaConf.merge(OmegaConf.structured(DatasetSpec), config)
         missing = sorted(OmegaConf.missing_keys(merged))
@@ -66,7 +80,7 @@ def load_dataset(config: Any) -> Dataset:
     1000
     """
     spec = get_spec(config) if isinstance(config, str) else to_spec(config)
-    key = OmegaConf.to_yaml(OmegaConf.structured(spec))
+    key = json.dumps(dataclasses.asdict(spec), sort_keys=True, default=str)
     if key not in _LOADED:
         reader = reader_for(spec.source.kind, spec.name)
         frame, digest, source = reader(spec.source, spec.name, na_values=spec.na_values)

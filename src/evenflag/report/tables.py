@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 DEFAULT_METRICS = ["auroc", "average_precision", "flag_rate_ratio", "score_distance", "false_flag_gap",
                    "leakage_auroc"]
@@ -28,6 +27,8 @@ CLOSER_TO_HALF = {"leakage_auroc"}
 def aggregate(runs: pd.DataFrame, metrics: list[str]) -> pd.DataFrame:
     """One row per (dataset, detector, weight): mean, sd, ci (half-width), n per metric,
     plus the number of finished and failed runs."""
+    from scipy import stats
+
     keys = ["dataset", "detector", "weight"]
     frame = runs.copy()
     frame["weight"] = frame["weight"].fillna(-1.0)  # keep cells without a weight in groupby

@@ -44,18 +44,19 @@ def launch(argv: list[str]) -> int:
         return _call_hydra(argv)
     multirun = any(a in ("-m", "--multirun") for a in argv)
     overrides, extra_dirs = _split_args(argv)
-    combos = _single_value_combinations(overrides)
+    combos, plain_values = _single_value_combinations(overrides, extra_dirs)
     first = None
     for combo in combos:
         cfg = _compose(combo, extra_dirs)
         first = first or cfg
-    if not multirun and len(combos) > 1:
+    _check_plain_values(first, plain_values)
+    if not multirun and (len(combos) > 1 or plain_values):
         raise ConfigError("comma-separated values sweep several runs; add -m (evenflag run -m ...)")
     total = _count_jobs(overrides, first) if multirun else 1
 
-    from evenflag.runner.tracking import Tracker, ui_command
+    from evenflag.runner.tracking import tracker_for, ui_command
 
-    tracker = Tracker(first.tracking.uri, first.study, first.tracking.artifact_root)
+    tracker = tracker_for(first.tracking.uri, first.study, first.tracking.artifact_root)
     tracker.experiment_id  # creates the store and the study once, before any job
     closed = tracker.close_stale_runs()
     if closed:
@@ -128,16 +129,28 @@ def _parse(overrides: list[str]):
         raise ConfigError(f"cannot read override: {str(exc).splitlines()[0]}") from exc
 
 
-def _single_value_combinations(overrides: list[str]) -> list[list[str]]:
-    """The first value of every sweep, then each other value of each sweep on
-    its own: every value gets checked without composing the whole grid."""
+def _is_group(key: str, extra_dirs: list[str]) -> bool:
+    key = key.lstrip("+~")
+    if key.startswith("hydra/") or key.startswith("hydra."):
+        return key.startswith("hydra/")
+    return any((Path(folder) / key).is_dir() for folder in [config_dir(), *extra_dirs])
+
+
+def _single_value_combinations(overrides: list[str], extra_dirs: list[str]):
+    """Configs to compose so that every value is checked without composing the
+    whole grid: the first value of every sweep, then each other value of each
+    config-group sweep on its own. Other values of plain sweeps (seed=0,1,2)
+    are returned to be merged into the first config, which is much cheaper."""
     parsed = _parse(overrides)
-    base, sweeps = [], []
+    base, sweeps, plain = [], [], []
     for original, item in zip(overrides, parsed):
         if item.is_sweep_override():
             key = item.get_key_element()
             values = [f"{key}={v}" for v in item.sweep_string_iterator()]
-            sweeps.append((len(base), values))
+            if _is_group(key, extra_dirs):
+                sweeps.append((len(base), values))
+            else:
+                plain += values[1:]
             base.append(values[0])
         else:
             base.append(original)
@@ -147,7 +160,24 @@ def _single_value_combinations(overrides: list[str]) -> list[list[str]]:
             combo = list(base)
             combo[index] = value
             combos.append(combo)
-    return combos
+    return combos, plain
+
+
+def _check_plain_values(cfg: DictConfig, plain_values: list[str]) -> None:
+    """Each further value of a plain sweep (seed=0,1,abc) set into a copy of the
+    first config, where the schema checks its type."""
+    from omegaconf.errors import OmegaConfBaseException
+
+    from evenflag.runner.config import RunConfig
+
+    if not plain_values:
+        return
+    run = OmegaConf.merge(OmegaConf.structured(RunConfig), {k: cfg[k] for k in cfg if k != "hydra"})
+    for item, text in zip(_parse(plain_values), plain_values):
+        try:
+            OmegaConf.update(run, item.key_or_group.lstrip("+~"), item.value(), merge=True)
+        except (OmegaConfBaseException, ValueError) as exc:
+            raise ConfigError(_composition_message(exc, [text], [])) from exc
 
 
 def _count_jobs(overrides: list[str], cfg: DictConfig) -> int:
@@ -179,6 +209,10 @@ def _compose(overrides: list[str], extra_dirs: list[str]) -> DictConfig:
         raise ConfigError(_missing_option_message(exc, extra_dirs)) from exc
     except (HydraException, OmegaConfBaseException) as exc:
         raise ConfigError(_composition_message(exc, overrides, extra_dirs)) from exc
+    missing = sorted(OmegaConf.missing_keys(OmegaConf.masked_copy(cfg, [k for k in cfg if k != "hydra"])))
+    if missing:
+        raise ConfigError(f"required value(s) not set: {', '.join(missing)}; set them on the command line, "
+                          f"e.g. {missing[0]}=...")
     from evenflag.mitigation import check_kind
     from evenflag.thresholds import POLICIES
     from evenflag.data.protocol import PROTOCOL_KINDS
@@ -227,6 +261,8 @@ def _composition_message(exc, overrides: list[str], extra_dirs: list[str]) -> st
     if unknown:
         where = key.group(1) if key else unknown.group(1)
         group = where.split(".")[0]
+        if where.startswith("detector.params."):
+            return f"'{where}' is not in the yaml; add an estimator argument with a leading +: +{where}=..."
         if group == "detector":
             return f"unknown setting '{where}'; {_detector_settings(overrides, extra_dirs)}"
         schema = GROUP_SCHEMAS.get(group)

@@ -14,7 +14,7 @@ from omegaconf import DictConfig, OmegaConf
 
 from evenflag.runner import ledger
 from evenflag.runner.provenance import fingerprint, flatten, git_state, library_versions
-from evenflag.runner.tracking import TAG, Tracker
+from evenflag.runner.tracking import TAG, tracker_for
 
 
 def _name(cfg: DictConfig) -> str:
@@ -46,7 +46,7 @@ def run_job(cfg: DictConfig) -> str:
     resolved = OmegaConf.to_container(cfg, resolve=True)
     tracker = run_id = None
     try:
-        tracker = Tracker(cfg.tracking.uri, cfg.study, cfg.tracking.artifact_root, launch_dir)
+        tracker = tracker_for(cfg.tracking.uri, cfg.study, cfg.tracking.artifact_root, launch_dir)
         from evenflag.data.registry import load_dataset, to_spec
 
         data_sha = load_dataset(to_spec(resolved["dataset"])).sha256
@@ -78,6 +78,7 @@ def run_job(cfg: DictConfig) -> str:
         notes = {f"{TAG}{k}": v for k, v in out.notes.items()}
         notes[f"{TAG}groups"] = ",".join(map(str, out.dataset.group.cat.categories))
         notes[f"{TAG}source"] = out.dataset.source
+        notes[f"{TAG}status"] = "finished"
         tracker.log(run_id, {}, metrics, notes)
         if out.history:
             tracker.log_history(run_id, out.history)

@@ -3,6 +3,8 @@ data -> split -> preprocessing -> detector -> scores -> flags -> metrics."""
 
 from __future__ import annotations
 
+import dataclasses
+import json
 import os
 import random
 import sys
@@ -94,7 +96,7 @@ def execute(cfg) -> RunOutput:
         detector_cfg = OmegaConf.to_container(detector_cfg, resolve=True)
 
     dataset = load_dataset(dataset_spec)
-    data = prepared_data(dataset, OmegaConf.to_yaml(OmegaConf.structured(dataset_spec)), protocol, seed)
+    data = prepared_data(dataset, json.dumps(dataclasses.asdict(dataset_spec), sort_keys=True, default=str), protocol, seed)
     timings["data"] = time.perf_counter() - started
 
     X_train, group_train = data.X_train, data.group_train

@@ -35,6 +35,18 @@ def ui_command(uri: str) -> str:
     return f"mlflow ui --backend-store-uri {uri}"
 
 
+_OPEN: dict[tuple, "Tracker"] = {}
+
+
+def tracker_for(uri: str | None, study: str, artifact_root: str | None = None, launch_dir: Path | None = None) -> "Tracker":
+    """One Tracker per (store, study) per process: opening an MLflow store costs
+    about 0.2 s, which a sweep would otherwise pay on every job."""
+    key = (uri, study, artifact_root, str(launch_dir or Path.cwd()))
+    if key not in _OPEN:
+        _OPEN[key] = Tracker(uri, study, artifact_root, launch_dir)
+    return _OPEN[key]
+
+
 class Tracker:
     """The study's MLflow experiment in one tracking store."""
 
@@ -111,18 +123,19 @@ class Tracker:
         return run.info.run_id
 
     def log(self, run_id: str, params: dict[str, str], metrics: dict[str, float], tags: dict[str, str]) -> None:
+        """As few log_batch calls as MLflow's per-batch limits allow (usually one)."""
         from mlflow.entities import Metric, Param, RunTag
 
         now = int(time.time() * 1000)
-        param_items = [Param(k[:250], str(v)[:6000]) for k, v in params.items()]
-        metric_items = [Metric(metric_key(k), float(v), now, 0) for k, v in metrics.items()]
-        tag_items = [RunTag(k, str(v)[:5000]) for k, v in tags.items()]
-        for start in range(0, len(param_items), MAX_PARAMS):
-            self.client.log_batch(run_id, params=param_items[start:start + MAX_PARAMS])
-        for start in range(0, len(metric_items), MAX_METRICS):
-            self.client.log_batch(run_id, metrics=metric_items[start:start + MAX_METRICS])
-        for start in range(0, len(tag_items), MAX_TAGS):
-            self.client.log_batch(run_id, tags=tag_items[start:start + MAX_TAGS])
+        params_left = [Param(k[:250], str(v)[:6000]) for k, v in params.items()]
+        metrics_left = [Metric(metric_key(k), float(v), now, 0) for k, v in metrics.items()]
+        tags_left = [RunTag(k, str(v)[:5000]) for k, v in tags.items()]
+        while params_left or metrics_left or tags_left:
+            p, params_left = params_left[:MAX_PARAMS], params_left[MAX_PARAMS:]
+            t, tags_left = tags_left[:MAX_TAGS], tags_left[MAX_TAGS:]
+            room = MAX_METRICS - len(p) - len(t)
+            m, metrics_left = metrics_left[:room], metrics_left[room:]
+            self.client.log_batch(run_id, metrics=m, params=p, tags=t)
 
     def log_history(self, run_id: str, history: list[dict[str, float]]) -> None:
         """Per-epoch training curves as metric steps (e.g. detection loss, adversary accuracy)."""
@@ -138,7 +151,6 @@ class Tracker:
         self.client.log_artifacts(run_id, str(folder))
 
     def finish(self, run_id: str) -> None:
-        self.client.set_tag(run_id, f"{TAG}status", "finished")
         self.client.set_terminated(run_id, status="FINISHED")
 
     def fail(self, run_id: str, message: str) -> None:

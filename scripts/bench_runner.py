@@ -1,0 +1,128 @@
+"""Benchmarks of the runner. Prints ratios; goals from the runner issue.
+
+1. Per-run overhead of evenflag (everything but detector fit and score) on a
+   trivial detector, against a bare Hydra app's no-op job, same sweep size.
+   Goal: at most 2x.
+2. Speed-up of a 2-job joblib sweep over the basic launcher on the same 8
+   isolation-forest runs on adult. Goal: at least 1.7x.
+3. Peak resident memory of one run on adult per detector. Goal: under 1 GB.
+
+Usage: .venv/bin/python scripts/bench_runner.py [--jobs N] [--skip-memory]
+Scratch files go to a temporary folder.
+"""
+
+import argparse
+import os
+import re
+import resource
+import subprocess
+import sys
+import tempfile
+import textwrap
+import time
+from pathlib import Path
+
+ENV = {**os.environ, "MLFLOW_DISABLE_TELEMETRY": "true", "HYDRA_FULL_ERROR": "1"}
+# A trivial detector: one Gaussian fitted to the training rows.
+TRIVIAL = ["dataset=synthetic_claims", "detector=sklearn", "detector.estimator=sklearn.mixture.GaussianMixture",
+           "+detector.params.n_components=1"]
+BARE_APP = textwrap.dedent('''
+    import hydra
+    from omegaconf import DictConfig
+
+    @hydra.main(config_path=None, config_name=None, version_base="1.3")
+    def main(cfg: DictConfig) -> None:
+        pass
+
+    if __name__ == "__main__":
+        main()
+''')
+
+
+def timed(command, cwd):
+    start = time.perf_counter()
+    result = subprocess.run(command, cwd=cwd, capture_output=True, text=True, env=ENV)
+    if result.returncode:
+        sys.exit(f"failed: {' '.join(command)}\n{result.stdout[-2000:]}\n{result.stderr[-2000:]}")
+    return time.perf_counter() - start, result.stdout
+
+
+def evenflag(*args):
+    return [sys.executable, "-m", "evenflag.cli", *args]
+
+
+def fit_and_score_seconds(store: Path, study: str) -> float:
+    from mlflow.tracking import MlflowClient
+
+    client = MlflowClient(tracking_uri=f"sqlite:///{store}")
+    experiment = client.get_experiment_by_name(study)
+    runs = client.search_runs([experiment.experiment_id], max_results=10000)
+    return sum(r.data.metrics.get("time.fit", 0) + r.data.metrics.get("time.score", 0) for r in runs)
+
+
+def overhead(scratch: Path, jobs: int):
+    seeds = ",".join(str(i) for i in range(jobs))
+    (scratch / "bare.py").write_text(BARE_APP)
+    # Warm both (imports, the store) so neither pays first-use costs in the timing.
+    timed([sys.executable, "bare.py", "-m", "+seed=0"], scratch)
+    timed(evenflag("run", *TRIVIAL, "study=warm", "metrics=quick"), scratch)
+    bare, _ = timed([sys.executable, "bare.py", "-m", f"+seed={seeds}"], scratch)
+    ours, _ = timed(evenflag("run", "-m", *TRIVIAL, "study=overhead",
+                             "metrics=quick", f"seed={seeds}"), scratch)
+    detector = fit_and_score_seconds(scratch / "outputs" / "tracking" / "mlflow.db", "overhead")
+    per_bare, per_ours = bare / jobs, (ours - detector) / jobs
+    print(f"1. per-run overhead, {jobs} jobs, basic launcher, point metrics")
+    print(f"   bare Hydra no-op job: {per_bare * 1000:.0f} ms/run; evenflag without fit+score: {per_ours * 1000:.0f} ms/run"
+          f" = {per_ours / per_bare:.2f}x (goal <= 2x)")
+    ours_b, _ = timed(evenflag("run", "-m", *TRIVIAL, "study=overhead_b",
+                               f"seed={seeds}"), scratch)
+    detector_b = fit_and_score_seconds(scratch / "outputs" / "tracking" / "mlflow.db", "overhead_b")
+    per_b = (ours_b - detector_b) / jobs
+    print(f"   with 200 bootstrap resamples (metrics=default): {per_b * 1000:.0f} ms/run = {per_b / per_bare:.2f}x")
+
+
+def parallel(scratch: Path):
+    timed(evenflag("run", "dataset=adult", "study=warm", "metrics=quick"), scratch)
+    print("2. isolation-forest runs on adult, basic launcher against joblib with 2 jobs (whole launch, wall time)")
+    for runs, metrics in ((8, "quick"), (8, "default"), (24, "default")):
+        args = ["dataset=adult", "detector=isolation_forest", "protocol=contaminated", f"metrics={metrics}",
+                "rerun=true", "seed=" + ",".join(map(str, range(runs)))]
+        basic, _ = timed(evenflag("run", "-m", *args, f"study=basic{runs}{metrics}"), scratch)
+        joblib, _ = timed(evenflag("run", "-m", *args, f"study=joblib{runs}{metrics}", "hydra/launcher=parallel",
+                                   "hydra.launcher.n_jobs=2"), scratch)
+        goal = " (goal >= 1.7x)" if runs == 8 else ""
+        print(f"   {runs} runs, metrics={metrics}: basic {basic:.1f} s, joblib {joblib:.1f} s: "
+              f"speed-up {basic / joblib:.2f}x{goal}")
+
+
+def memory(scratch: Path, detectors):
+    print("3. peak resident memory of one run on adult (fresh process, metrics=default)")
+    for detector in detectors:
+        child = textwrap.dedent(f'''
+            import resource, sys
+            from evenflag.cli import main
+            code = main(["run", "dataset=adult", "detector={detector}", "study=memory", "rerun=true"])
+            print("PEAK", resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
+            sys.exit(code)
+        ''')
+        seconds, out = timed([sys.executable, "-c", child], scratch)
+        peak_kb = int(re.search(r"PEAK (\d+)", out).group(1))
+        print(f"   {detector:<22} {peak_kb / 1024:7.0f} MB = {peak_kb / 1024 / 1024:.2f}x of 1 GB ({seconds:.1f} s)")
+
+
+def main():
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--jobs", type=int, default=20)
+    parser.add_argument("--skip-memory", action="store_true")
+    parser.add_argument("--detectors", default="isolation_forest,local_outlier_factor,autoencoder,deep_svdd,adversarial")
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory(prefix="evenflag-bench-") as folder:
+        scratch = Path(folder)
+        overhead(scratch, args.jobs)
+        parallel(scratch)
+        if not args.skip_memory:
+            memory(scratch, args.detectors.split(","))
+
+
+if __name__ == "__main__":
+    main()
