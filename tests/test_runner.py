@@ -183,3 +183,27 @@ def test_bad_overrides_give_one_line(tmp_path, args, expected):
     lines = result.stderr.strip().splitlines()
     assert len(lines) == 1 and expected in lines[0], result.stderr
     assert not (tmp_path / "outputs").exists()  # nothing half-written
+
+
+def test_neural_detectors_and_mitigations_run_in_a_sweep(tmp_path):
+    small_net = ["detector.epochs=3", "detector.hidden=[16]", "detector.rep_dim=4"]
+    result = evenflag(tmp_path, "run", "-m", *SMALL, "study=neural", "detector=deep_svdd", *small_net,
+                      "mitigation=none,group_balanced,group_thresholds")
+    assert result.returncode == 0, result.stderr + result.stdout
+    adversarial = evenflag(tmp_path, "run", *SMALL, "study=neural", "detector=adversarial", "detector.weight=0.5",
+                           "detector.base.epochs=3", "detector.base.hidden=[16]", "detector.base.rep_dim=4")
+    assert adversarial.returncode == 0, adversarial.stderr + adversarial.stdout
+    client = client_for(tmp_path)
+    runs = runs_of(client, "neural")
+    assert len(runs) == 4 and {r.info.status for r in runs} == {"FINISHED"}
+    for run in runs:
+        assert 0.0 <= run.data.metrics["leakage_auroc"] <= 1.0
+    adv = next(r for r in runs if r.data.params["detector.name"] == "adversarial")
+    curve = client.get_metric_history(adv.info.run_id, "train.adversary_accuracy")
+    assert [m.step for m in curve] == [0, 1, 2]
+    assert "train.adversary_baseline" in adv.data.metrics
+    # group_thresholds: every group flagged at the same rate, within one row per group.
+    equalised = next(r for r in runs if r.data.params["mitigation.kind"] == "group_thresholds")
+    scores = pd.read_parquet(client.download_artifacts(equalised.info.run_id, "scores.parquet", str(tmp_path)))
+    for _, rows in scores.groupby("group"):
+        assert abs(rows["flag"].sum() - 0.05 * len(rows)) <= 1

@@ -216,7 +216,8 @@ def make_synthetic(spec: SourceSpec, name: str, na_values=()):
     away on the first half of the features, for reasons unrelated to fraud
     (different prices, longer travel), so a detector blind to region flags
     inland claims more often. Anomalies (``review_outcome == fraud``) are
-    scattered far from both regions' normal claims.
+    scattered around ``anomaly_distance`` (plus or minus 1) standard
+    deviations from the centre, in random directions.
     """
     rows, d = int(spec.rows), int(spec.n_features)
     if rows < 20 or d < 1:
@@ -231,12 +232,14 @@ def make_synthetic(spec: SourceSpec, name: str, na_values=()):
     x[inland, :shifted] += spec.shift
     directions = rng.standard_normal((int(anomaly.sum()), d))
     directions /= np.linalg.norm(directions, axis=1, keepdims=True)
-    x[anomaly] = x[anomaly] * 0.5 + directions * rng.uniform(4.0, 6.0, size=(int(anomaly.sum()), 1))
+    distance = rng.uniform(spec.anomaly_distance - 1.0, spec.anomaly_distance + 1.0, size=(int(anomaly.sum()), 1))
+    x[anomaly] = x[anomaly] * 0.5 + directions * distance
     frame = pd.DataFrame(x, columns=[f"claim_feature_{i}" for i in range(d)])
     frame["region"] = np.where(inland, SYNTHETIC_GROUPS[1], SYNTHETIC_GROUPS[0])
     frame["review_outcome"] = np.where(anomaly, "fraud", "ok")
     digest = cache.sha256_bytes(pd.util.hash_pandas_object(frame, index=False).values.tobytes())
-    return frame, digest, f"synthetic:rows={rows},features={d},shift={spec.shift},seed={spec.data_seed}"
+    return frame, digest, (f"synthetic:rows={rows},features={d},shift={spec.shift},"
+                          f"anomaly_distance={spec.anomaly_distance},seed={spec.data_seed}")
 
 
 READERS = {

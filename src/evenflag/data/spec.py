@@ -19,7 +19,7 @@ class SourceSpec:
     kind ``openml``: ``openml_id``.
     kind ``file``: ``path`` to the user's CSV or Parquet.
     kind ``synthetic``: ``rows``, ``n_features``, ``anomaly_rate``,
-    ``minority_share``, ``shift``, ``data_seed``.
+    ``minority_share``, ``shift``, ``anomaly_distance``, ``data_seed``.
     A ``module:function`` string as kind calls that function with this spec;
     it must return ``(DataFrame, sha256, source_text)``.
     """
@@ -42,6 +42,7 @@ class SourceSpec:
     anomaly_rate: float = 0.05
     minority_share: float = 0.3
     shift: float = 1.0
+    anomaly_distance: float = 5.0
     data_seed: int = 0
     options: dict[str, Any] = field(default_factory=dict)
 

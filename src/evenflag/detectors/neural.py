@@ -172,7 +172,7 @@ class _NeuralDetector:
         for module in self._modules():
             module.to(self.device_)
         self._prepare_objective(X)
-        optimizer = torch.optim.Adam(self._parameters(), lr=self.lr, weight_decay=self.weight_decay)
+        optimizer = torch.optim.Adam(self._parameters(), lr=self.lr, weight_decay=self.weight_decay, foreach=True)
         adv = adversary.start(group, self.rep_dim, self.device_) if adversary is not None else None
         self.history_ = []
         best, stale = math.inf, 0
@@ -181,9 +181,9 @@ class _NeuralDetector:
             total = torch.zeros((), device=self.device_)
             for idx in self._batches(len(X), generator):
                 xb = X[idx]
-                if adv is not None:
-                    adv.adversary_steps(self._encode, xb, idx)
                 zb = self._encode(xb)
+                if adv is not None:
+                    adv.adversary_steps(zb.detach(), idx)
                 loss = self._detection_loss(xb, zb, epoch)
                 objective = loss if adv is None else loss + adv.encoder_term(zb, idx, epoch)
                 optimizer.zero_grad(set_to_none=True)
@@ -415,7 +415,7 @@ class _AdversaryState:
             torch.nn.BatchNorm1d(rep_dim, affine=False),
             mlp([rep_dim, *spec.hidden, len(values)], "relu", bias=True, last_activation=False),
         ).to(device)
-        self.optimizer = torch.optim.Adam(self.net.parameters(), lr=spec.lr)
+        self.optimizer = torch.optim.Adam(self.net.parameters(), lr=spec.lr, foreach=True)
         self.loss_fn = torch.nn.CrossEntropyLoss()
         self.epoch = 0
         self._loss_sum = torch.zeros((), device=device)
@@ -430,13 +430,11 @@ class _AdversaryState:
             return spec.weight * min(1.0, (epoch - spec.warmup_epochs + 1) / spec.ramp_epochs)
         return spec.weight
 
-    def adversary_steps(self, encode, xb, idx):
-        """Update the adversary with the encoder frozen (alternating mode)."""
+    def adversary_steps(self, z, idx):
+        """Update the adversary on the batch's (detached) embedding: the encoder
+        is frozen for these steps (alternating mode)."""
         if self.spec.mode != "alternating":
             return
-        torch = _torch()
-        with torch.no_grad():
-            z = encode(xb)
         target = self.codes[idx]
         for _ in range(self.spec.steps):
             loss = self.loss_fn(self.net(z), target)
@@ -511,7 +509,7 @@ class AdversarialDetector:
     """
 
     def __init__(self, base: dict | None = None, weight: float = 1.0, adversary_hidden: list[int] | None = None,
-                 adversary_steps: int = 5, warmup_epochs: int = 0, ramp_epochs: int = 0, mode: str = "alternating",
+                 adversary_steps: int = 2, warmup_epochs: int = 0, ramp_epochs: int = 0, mode: str = "alternating",
                  adversary_lr: float = 1e-2, seed: int = 0):
         if mode not in ("alternating", "gradient_reversal"):
             raise DetectorError(f"mode '{mode}' is unknown; use alternating or gradient_reversal")
