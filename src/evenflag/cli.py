@@ -146,7 +146,7 @@ def cmd_report(args) -> int:
     out = Path(args.out) if args.out else Path("outputs") / "reports" / "+".join(args.study)
     request = ReportRequest(uri=uri, studies=args.study, where=where,
                             metrics=args.metrics.split(",") if args.metrics else list(DEFAULT_METRICS),
-                            out=out, figures=not args.no_figures, memo=args.memo, html=args.html)
+                            out=out, figures=not args.no_figures, memo=args.memo, html=args.html, run_id=args.run_id)
     written = build_report(request)
     print(written.pop("_markdown"))
     print("written: " + ", ".join(str(p) for p in written.values()))
@@ -185,6 +185,7 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("--no-figures", action="store_true", help="tables only")
     report.add_argument("--memo", action="store_true", help="also write memo.md: metadata, table, figures, reading, caution")
     report.add_argument("--html", action="store_true", help="with --memo: also write memo.html")
+    report.add_argument("--run-id", default=None, help="the run whose per-group score ECDF is drawn (default: the first)")
     report.set_defaults(func=cmd_report)
     check = sub.add_parser("check-detector", help="conformance checks for a detector plugin")
     check.add_argument("target", help="module:Class or a registered detector name")
@@ -201,6 +202,7 @@ def _check_detector(target: str) -> int:
 def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
+    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
     try:
         if argv and argv[0] == "run":
             from evenflag.runner.app import launch

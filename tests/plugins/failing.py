@@ -15,3 +15,10 @@ class FailsOnOddSeed:
 
     def anomaly_score(self, X):
         return np.linalg.norm(np.asarray(X) - self.mean_, axis=1)
+
+
+class AlwaysFails(FailsOnOddSeed):
+    """Fails for every seed: a whole table cell without results."""
+
+    def fit(self, X, group=None):
+        raise RuntimeError("this detector always fails")

@@ -6,15 +6,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from evenflag.report.collect import RunTable, load_runs
+from evenflag.report.memo import CAUTION
 from evenflag.report.tables import DEFAULT_METRICS, aggregate, to_csv, to_latex, to_markdown
-
-CAUTION = (
-    "**Caution.** These numbers describe one detector on one data set under one protocol and threshold; "
-    "they change with the data, the protocol and the threshold. The four-fifths rule is a rule of thumb, "
-    "not a legal finding. Group-specific thresholds treat people differently by group and may be unlawful "
-    "in some places. Defer to local law, regulators and qualified counsel before acting on these results."
-)
-
 
 @dataclass
 class ReportRequest:
@@ -26,6 +19,7 @@ class ReportRequest:
     figures: bool = True
     memo: bool = False
     html: bool = False
+    run_id: str | None = None
 
 
 def caption(runs: RunTable) -> str:
@@ -42,7 +36,7 @@ def build_report(request: ReportRequest) -> dict[str, Path]:
     written = {}
     markdown = to_markdown(table, request.metrics)
     written["table.md"] = out / "table.md"
-    written["table.md"].write_text(markdown)
+    written["table.md"].write_text(markdown + "\n> " + CAUTION + "\n")
     written["table.tex"] = out / "table.tex"
     written["table.tex"].write_text(to_latex(table, request.metrics, caption(runs)))
     written["table.csv"] = out / "table.csv"
@@ -50,10 +44,10 @@ def build_report(request: ReportRequest) -> dict[str, Path]:
     if request.figures:
         from evenflag.report.figures import write_figures
 
-        written.update(write_figures(runs, table, out))
+        written.update(write_figures(runs, table, out, run_id=request.run_id))
     if request.memo:
         from evenflag.report.memo import write_memo
 
         written.update(write_memo(runs, table, request, written, html=request.html))
-    written["_markdown"] = markdown
+    written["_markdown"] = markdown + "\n" + CAUTION.replace("**", "") + "\n"
     return written

@@ -1,0 +1,240 @@
+"""Figures in our own plain style: PNG and SVG, readable in greyscale
+(markers, hatching and line styles carry the distinctions, not colour)."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from evenflag.report.collect import RunTable
+from evenflag.report.tables import HIGHER_BETTER
+
+LINESTYLES = ["-", "--", ":", "-."]
+MARKERS = ["o", "s", "^", "D", "v", "P", "X", "*"]
+HATCHES = ["", "//", "..", "xx", "\\\\", "--", "++", "oo"]
+FOUR_FIFTHS = 0.8
+
+
+def _plt():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    plt.rcParams.update({
+        "font.size": 9, "axes.spines.top": False, "axes.spines.right": False, "axes.grid": True,
+        "grid.color": "0.88", "grid.linewidth": 0.6, "axes.prop_cycle": plt.cycler(color=["0.1", "0.45", "0.65", "0.3"]),
+        "svg.hashsalt": "evenflag", "svg.fonttype": "none",
+    })
+    return plt
+
+
+def _save(fig, out: Path, name: str) -> dict[str, Path]:
+    paths = {}
+    for ext in ("png", "svg"):
+        path = out / f"{name}.{ext}"
+        fig.savefig(path, dpi=150, bbox_inches="tight", metadata={"Date": None} if ext == "svg" else None)
+        paths[f"{name}.{ext}"] = path
+    return paths
+
+
+def pareto_front(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Indices of points not dominated when both coordinates are to be maximised,
+    ordered by x.
+
+    Examples
+    --------
+    >>> pareto_front(np.array([0.9, 0.8, 0.7, 0.85]), np.array([0.5, 0.7, 0.9, 0.4])).tolist()
+    [2, 1, 0]
+    """
+    keep = []
+    for i in range(len(x)):
+        dominated = np.any((x >= x[i]) & (y >= y[i]) & ((x > x[i]) | (y > y[i])))
+        if not dominated and np.isfinite(x[i]) and np.isfinite(y[i]):
+            keep.append(i)
+    return np.array(sorted(keep, key=lambda i: x[i]), dtype=int)
+
+
+def tradeoff_figure(table: pd.DataFrame, out: Path, detection: str = "auroc", fairness: str = "flag_rate_ratio"):
+    """Fairness against detection over the adversary's weight, one panel per dataset."""
+    cells = table[table["weight"].notna()]
+    if cells.empty or f"{detection}.mean" not in cells or f"{fairness}.mean" not in cells:
+        return {}
+    plt = _plt()
+    datasets = sorted(cells["dataset"].unique())
+    fig, axes = plt.subplots(1, len(datasets), figsize=(3.3 * len(datasets), 3.1), squeeze=False)
+    for ax, dataset in zip(axes[0], datasets):
+        part = cells[cells["dataset"] == dataset].sort_values("weight")
+        x, y = part[f"{detection}.mean"].to_numpy(), part[f"{fairness}.mean"].to_numpy()
+        ax.errorbar(x, y, xerr=part[f"{detection}.ci"].fillna(0), yerr=part[f"{fairness}.ci"].fillna(0),
+                    fmt="o", color="0.45", ecolor="0.75", markersize=4, capsize=2, label="weight (mean, 95% CI)")
+        for xi, yi, w in zip(x, y, part["weight"]):
+            ax.annotate(f"{w:g}", (xi, yi), textcoords="offset points", xytext=(4, 3), fontsize=7)
+        front = pareto_front(x, y)
+        if len(front):
+            ax.plot(x[front], y[front], "-", color="0.1", linewidth=1.4, marker="D", markersize=5, label="Pareto front")
+        ax.axhline(FOUR_FIFTHS, linestyle="--", color="0.3", linewidth=0.9, label="four-fifths line (0.8)")
+        ax.set_title(dataset)
+        ax.set_xlabel(detection.replace("_", " "))
+        ax.set_ylabel(fairness.replace("_", " "))
+    axes[0][0].legend(loc="lower left", fontsize=7, frameon=False)
+    fig.tight_layout()
+    paths = _save(fig, out, "tradeoff")
+    plt.close(fig)
+    return paths
+
+
+def flag_rate_figure(runs: pd.DataFrame, out: Path):
+    """Per-group flag rates (mean over seeds, 95% t-interval) per detector, with
+    each detector's four-fifths line (0.8 x its highest group rate)."""
+    from scipy import stats
+
+    finished = runs[runs["status"] == "FINISHED"]
+    columns = [c for c in finished.columns if c.startswith("flag_rate/") and "." not in c.split("/", 1)[1]]
+    if not columns:
+        return {}
+    plt = _plt()
+    datasets = sorted(finished["dataset"].unique())
+    fig, axes = plt.subplots(len(datasets), 1, figsize=(7.5, 2.3 * len(datasets)), squeeze=False)
+    for ax, dataset in zip(axes[:, 0], datasets):
+        part = finished[finished["dataset"] == dataset]
+        groups = [c for c in columns if part[c].notna().any()]
+        detectors = sorted(part["detector"].unique())
+        width = 0.8 / max(len(groups), 1)
+        for d_index, detector in enumerate(detectors):
+            rows = part[part["detector"] == detector]
+            means = []
+            for g_index, column in enumerate(groups):
+                values = rows[column].dropna().to_numpy()
+                mean = values.mean() if len(values) else np.nan
+                half = stats.t.ppf(0.975, len(values) - 1) * values.std(ddof=1) / np.sqrt(len(values)) if len(values) > 1 else 0
+                means.append(mean)
+                ax.bar(d_index + (g_index - (len(groups) - 1) / 2) * width, mean, width * 0.95, yerr=half,
+                       color="white", edgecolor="0.15", hatch=HATCHES[g_index % len(HATCHES)], capsize=2,
+                       error_kw={"elinewidth": 0.8, "ecolor": "0.3"},
+                       label=column.split("/", 1)[1] if d_index == 0 else None)
+            if np.isfinite(np.nanmax(means)) if len(means) else False:
+                line = FOUR_FIFTHS * np.nanmax(means)
+                ax.plot([d_index - 0.45, d_index + 0.45], [line, line], "--", color="0.1", linewidth=1,
+                        label="0.8 x highest rate" if d_index == 0 else None)
+        ax.set_xticks(range(len(detectors)))
+        ax.set_xticklabels(detectors, rotation=12, fontsize=7)
+        ax.set_ylabel("flag rate")
+        ax.set_title(dataset, loc="left")
+        ax.legend(fontsize=7, frameon=False, ncol=min(len(groups) + 1, 4))
+    fig.tight_layout()
+    paths = _save(fig, out, "flag_rates")
+    plt.close(fig)
+    return paths
+
+
+def score_ecdf_figure(scores: pd.DataFrame, out: Path, title: str):
+    """Per-group empirical CDFs of one run's test scores, on the pooled score
+    quantile (the scale of ``score_distance``): readable whatever the detector's
+    score range, and the area between two curves is the distance."""
+    from scipy.stats import rankdata
+
+    plt = _plt()
+    fig, ax = plt.subplots(figsize=(4.6, 3.2))
+    scores = scores.assign(quantile=rankdata(scores["score"], method="max") / len(scores))
+    for i, (group, rows) in enumerate(sorted(scores.groupby("group"), key=lambda kv: str(kv[0]))):
+        values = np.sort(rows["quantile"].to_numpy())
+        ax.step(values, np.arange(1, len(values) + 1) / len(values), where="post", color="0.1",
+                linestyle=LINESTYLES[i % len(LINESTYLES)], linewidth=1.3, label=f"{group} (n={len(values)})")
+    flagged = scores.loc[scores["flag"], "quantile"]
+    if len(flagged):
+        ax.axvline(flagged.min(), color="0.5", linewidth=0.8, linestyle=":", label="flag threshold")
+    ax.set_xlabel("pooled score quantile (1 = most anomalous)")
+    ax.set_ylabel("share of group at or below")
+    ax.set_title(title, fontsize=8)
+    ax.legend(fontsize=7, frameon=False)
+    fig.tight_layout()
+    paths = _save(fig, out, "score_ecdf")
+    plt.close(fig)
+    return paths
+
+
+def critical_difference_figure(result, out: Path, metric: str):
+    """Mean ranks on a line (1 = best) with bars joining detectors whose mean
+    ranks differ by less than the Nemenyi critical difference."""
+    plt = _plt()
+    order = np.argsort(result.mean_ranks)
+    ranks = result.mean_ranks[order]
+    names = [result.methods[i] for i in order]
+    k = len(names)
+    fig, ax = plt.subplots(figsize=(6.4, 1.2 + 0.28 * k))
+    ax.set_xlim(0.8, k + 0.2)
+    ax.set_ylim(-(k + 1) * 0.5, 1.6)
+    ax.axis("off")
+    ax.plot([1, k], [1, 1], color="0.1", linewidth=1)
+    for r in range(1, k + 1):
+        ax.plot([r, r], [1, 1.12], color="0.1", linewidth=1)
+        ax.text(r, 1.2, str(r), ha="center", va="bottom", fontsize=8)
+    cd = result.critical_difference
+    ax.plot([1, 1 + cd], [1.5, 1.5], color="0.1", linewidth=2)
+    ax.text(1 + cd / 2, 1.55, f"CD = {cd:.2f}", ha="center", va="bottom", fontsize=7)
+    half = (k + 1) // 2
+    for i, (name, rank) in enumerate(zip(names, ranks)):
+        left = i < half
+        y = -0.4 * (i + 1) if left else -0.4 * (k - i)
+        x_text = 0.85 if left else k + 0.15
+        ax.plot([rank, rank, x_text], [1, y, y], color="0.3", linewidth=0.8)
+        ax.text(x_text, y, f"{name} ({rank:.2f})", ha="right" if left else "left", va="center", fontsize=7)
+    # Cliques: maximal runs of detectors within CD of each other.
+    level = 0
+    for i in range(k):
+        j = i
+        while j + 1 < k and ranks[j + 1] - ranks[i] < cd:
+            j += 1
+        if j > i and (i == 0 or ranks[j] - ranks[i - 1] >= cd):
+            y = 0.85 - 0.12 * level
+            ax.plot([ranks[i] - 0.03, ranks[j] + 0.03], [y, y], color="0.1", linewidth=3)
+            level += 1
+    ax.set_title(f"Mean rank by {metric.replace('_', ' ')} over {result.n_datasets} datasets "
+                 f"(Friedman p = {result.p_value:.3g}; Nemenyi, alpha 0.05)", fontsize=8)
+    paths = _save(fig, out, "critical_difference")
+    plt.close(fig)
+    return paths
+
+
+def first_finished_scores(runs: RunTable, run_id: str | None = None):
+    """The scores artifact of one run (the given one, or the first finished)."""
+    from mlflow.tracking import MlflowClient
+
+    frame = runs.runs
+    chosen = frame[frame["run_id"] == run_id] if run_id else frame[frame["status"] == "FINISHED"]
+    if chosen.empty:
+        return None, None
+    row = chosen.sort_values(["dataset", "detector", "seed"]).iloc[0]
+    client = MlflowClient(tracking_uri=runs.uri)
+    import tempfile
+
+    with tempfile.TemporaryDirectory() as folder:
+        path = client.download_artifacts(row["run_id"], "scores.parquet", folder)
+        scores = pd.read_parquet(path)
+    return scores, f"{row['dataset']} / {row['detector']} / seed {row['seed']} (run {row['run_id'][:8]})"
+
+
+def write_figures(runs: RunTable, table: pd.DataFrame, out: Path, run_id: str | None = None,
+                  rank_metric: str = "auroc") -> dict[str, Path]:
+    os.environ.setdefault("MPLBACKEND", "Agg")
+    written: dict[str, Path] = {}
+    written.update(tradeoff_figure(table, out))
+    written.update(flag_rate_figure(runs.runs, out))
+    scores, title = first_finished_scores(runs, run_id)
+    if scores is not None:
+        written.update(score_ecdf_figure(scores, out, title))
+    from evenflag.report.stats import friedman_nemenyi
+
+    plain = table[table["weight"].isna()] if table["weight"].notna().any() and table["weight"].isna().any() else table
+    matrix = plain.pivot_table(index="dataset", columns="detector", values=f"{rank_metric}.mean")
+    if matrix.shape[0] >= 2 and matrix.shape[1] >= 3:
+        try:
+            result = friedman_nemenyi(matrix, higher_is_better=rank_metric in HIGHER_BETTER)
+            written.update(critical_difference_figure(result, out, rank_metric))
+        except ValueError:
+            pass
+    return written
