@@ -63,6 +63,8 @@ def tradeoff_figure(table: pd.DataFrame, out: Path, detection: str = "auroc", fa
     cells = table[table["weight"].notna()]
     if cells.empty or f"{detection}.mean" not in cells or f"{fairness}.mean" not in cells:
         return {}
+    if cells.groupby("dataset")["weight"].nunique().max() < 2:
+        return {}  # one weight per dataset: nothing to trade off
     plt = _plt()
     datasets = sorted(cells["dataset"].unique())
     fig, axes = plt.subplots(1, len(datasets), figsize=(3.3 * len(datasets), 3.1), squeeze=False)
@@ -98,7 +100,7 @@ def flag_rate_figure(runs: pd.DataFrame, out: Path):
         return {}
     plt = _plt()
     datasets = sorted(finished["dataset"].unique())
-    fig, axes = plt.subplots(len(datasets), 1, figsize=(7.5, 2.3 * len(datasets)), squeeze=False)
+    fig, axes = plt.subplots(len(datasets), 1, figsize=(9, 2.6 * len(datasets)), squeeze=False)
     for ax, dataset in zip(axes[:, 0], datasets):
         part = finished[finished["dataset"] == dataset]
         groups = [c for c in columns if part[c].notna().any()]
@@ -121,10 +123,10 @@ def flag_rate_figure(runs: pd.DataFrame, out: Path):
                 ax.plot([d_index - 0.45, d_index + 0.45], [line, line], "--", color="0.1", linewidth=1,
                         label="0.8 x highest rate" if d_index == 0 else None)
         ax.set_xticks(range(len(detectors)))
-        ax.set_xticklabels(detectors, rotation=12, fontsize=7)
+        ax.set_xticklabels([d.replace(" + ", "\n+ ") for d in detectors], fontsize=7)
         ax.set_ylabel("flag rate")
         ax.set_title(dataset, loc="left")
-        ax.legend(fontsize=7, frameon=False, ncol=min(len(groups) + 1, 4))
+        ax.legend(fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0))
     fig.tight_layout()
     paths = _save(fig, out, "flag_rates")
     plt.close(fig)
@@ -165,9 +167,9 @@ def critical_difference_figure(result, out: Path, metric: str):
     ranks = result.mean_ranks[order]
     names = [result.methods[i] for i in order]
     k = len(names)
-    fig, ax = plt.subplots(figsize=(6.4, 1.2 + 0.28 * k))
+    fig, ax = plt.subplots(figsize=(6.4, 1.0 + 0.2 * k))
     ax.set_xlim(0.8, k + 0.2)
-    ax.set_ylim(-(k + 1) * 0.5, 1.6)
+    ax.set_ylim(-0.4 * ((k + 1) // 2) - 0.3, 1.75)
     ax.axis("off")
     ax.plot([1, k], [1, 1], color="0.1", linewidth=1)
     for r in range(1, k + 1):
@@ -194,7 +196,7 @@ def critical_difference_figure(result, out: Path, metric: str):
             ax.plot([ranks[i] - 0.03, ranks[j] + 0.03], [y, y], color="0.1", linewidth=3)
             level += 1
     ax.set_title(f"Mean rank by {metric.replace('_', ' ')} over {result.n_datasets} datasets "
-                 f"(Friedman p = {result.p_value:.3g}; Nemenyi, alpha 0.05)", fontsize=8)
+                 f"(Friedman p = {result.p_value:.3g}; Nemenyi, alpha 0.05)", fontsize=8, pad=14)
     paths = _save(fig, out, "critical_difference")
     plt.close(fig)
     return paths
@@ -218,6 +220,15 @@ def first_finished_scores(runs: RunTable, run_id: str | None = None):
     return scores, f"{row['dataset']} / {row['detector']} / seed {row['seed']} (run {row['run_id'][:8]})"
 
 
+def method_matrix(table: pd.DataFrame, metric: str) -> pd.DataFrame:
+    """Datasets x methods of a metric's mean; a detector swept over several
+    weights counts as one method per weight."""
+    weights = table.groupby("detector")["weight"].nunique()
+    label = table["detector"] + table.apply(
+        lambda r: f" w={r['weight']:g}" if pd.notna(r["weight"]) and weights[r["detector"]] > 1 else "", axis=1)
+    return table.assign(method=label).pivot_table(index="dataset", columns="method", values=f"{metric}.mean")
+
+
 def write_figures(runs: RunTable, table: pd.DataFrame, out: Path, run_id: str | None = None,
                   rank_metric: str = "auroc") -> dict[str, Path]:
     os.environ.setdefault("MPLBACKEND", "Agg")
@@ -229,8 +240,7 @@ def write_figures(runs: RunTable, table: pd.DataFrame, out: Path, run_id: str | 
         written.update(score_ecdf_figure(scores, out, title))
     from evenflag.report.stats import friedman_nemenyi
 
-    plain = table[table["weight"].isna()] if table["weight"].notna().any() and table["weight"].isna().any() else table
-    matrix = plain.pivot_table(index="dataset", columns="detector", values=f"{rank_metric}.mean")
+    matrix = method_matrix(table, rank_metric)
     if matrix.shape[0] >= 2 and matrix.shape[1] >= 3:
         try:
             result = friedman_nemenyi(matrix, higher_is_better=rank_metric in HIGHER_BETTER)

@@ -77,12 +77,13 @@ def reading(runs: RunTable, table: pd.DataFrame) -> list[str]:
 
 
 def friedman_lines(table: pd.DataFrame, metrics=("auroc", "flag_rate_ratio")) -> list[str]:
+    from evenflag.report.figures import method_matrix
+
     lines = []
-    plain = table[table["weight"].isna()] if table["weight"].isna().any() else table
     for metric in metrics:
-        if f"{metric}.mean" not in plain:
+        if f"{metric}.mean" not in table:
             continue
-        matrix = plain.pivot_table(index="dataset", columns="detector", values=f"{metric}.mean")
+        matrix = method_matrix(table, metric)
         if matrix.shape[0] < 2 or matrix.shape[1] < 3:
             continue
         try:
