@@ -207,3 +207,13 @@ def test_neural_detectors_and_mitigations_run_in_a_sweep(tmp_path):
     scores = pd.read_parquet(client.download_artifacts(equalised.info.run_id, "scores.parquet", str(tmp_path)))
     for _, rows in scores.groupby("group"):
         assert abs(rows["flag"].sum() - 0.05 * len(rows)) <= 1
+
+
+@pytest.mark.parametrize("experiment, jobs", [("demo", 12), ("reference", 200), ("weight_tradeoff", 54)])
+def test_study_configs_compose_and_count(experiment, jobs):
+    from evenflag.runner.app import _compose, _count_jobs
+
+    cfg = _compose([f"experiment={experiment}"], [])
+    assert cfg.study == experiment
+    assert _count_jobs([f"experiment={experiment}"], cfg) == jobs
+    assert cfg.hydra.launcher.n_jobs == 2 and "Joblib" in cfg.hydra.launcher._target_

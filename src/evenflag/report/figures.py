@@ -41,6 +41,14 @@ def _save(fig, out: Path, name: str) -> dict[str, Path]:
     return paths
 
 
+def clipped_errors(mean, half, low=0.0, high=1.0):
+    """Asymmetric error bars of mean +/- half, clipped to a metric's range
+    (a t-interval over few seeds can cross 0 or 1; the metric cannot)."""
+    mean = np.asarray(mean, dtype=float)
+    half = np.nan_to_num(np.asarray(half, dtype=float))
+    return np.vstack([np.minimum(half, mean - low), np.minimum(half, high - mean)]).clip(min=0)
+
+
 def pareto_front(x: np.ndarray, y: np.ndarray) -> np.ndarray:
     """Indices of points not dominated when both coordinates are to be maximised,
     ordered by x.
@@ -71,14 +79,16 @@ def tradeoff_figure(table: pd.DataFrame, out: Path, detection: str = "auroc", fa
     for ax, dataset in zip(axes[0], datasets):
         part = cells[cells["dataset"] == dataset].sort_values("weight")
         x, y = part[f"{detection}.mean"].to_numpy(), part[f"{fairness}.mean"].to_numpy()
-        ax.errorbar(x, y, xerr=part[f"{detection}.ci"].fillna(0), yerr=part[f"{fairness}.ci"].fillna(0),
-                    fmt="o", color="0.45", ecolor="0.75", markersize=4, capsize=2, label="weight (mean, 95% CI)")
+        ax.errorbar(x, y, xerr=clipped_errors(x, part[f"{detection}.ci"]), yerr=clipped_errors(y, part[f"{fairness}.ci"]),
+                    fmt="o", color="0.45", ecolor="0.8", elinewidth=0.8, markersize=4, capsize=2,
+                    label="weight (mean, 95% CI)")
         for xi, yi, w in zip(x, y, part["weight"]):
             ax.annotate(f"{w:g}", (xi, yi), textcoords="offset points", xytext=(4, 3), fontsize=7)
         front = pareto_front(x, y)
         if len(front):
             ax.plot(x[front], y[front], "-", color="0.1", linewidth=1.4, marker="D", markersize=5, label="Pareto front")
         ax.axhline(FOUR_FIFTHS, linestyle="--", color="0.3", linewidth=0.9, label="four-fifths line (0.8)")
+        ax.set_ylim(0, 1.04)
         ax.set_title(dataset)
         ax.set_xlabel(detection.replace("_", " "))
         ax.set_ylabel(fairness.replace("_", " "))
@@ -87,6 +97,12 @@ def tradeoff_figure(table: pd.DataFrame, out: Path, detection: str = "auroc", fa
     paths = _save(fig, out, "tradeoff")
     plt.close(fig)
     return paths
+
+
+def _stacked(label: str) -> str:
+    """'adversarial deep_svdd + group_balanced' -> one word per line, '+ x' kept together."""
+    name, *extras = label.split(" + ")
+    return "\n".join(name.split(" ") + [f"+ {extra}" for extra in extras])
 
 
 def flag_rate_figure(runs: pd.DataFrame, out: Path):
@@ -114,7 +130,8 @@ def flag_rate_figure(runs: pd.DataFrame, out: Path):
                 mean = values.mean() if len(values) else np.nan
                 half = stats.t.ppf(0.975, len(values) - 1) * values.std(ddof=1) / np.sqrt(len(values)) if len(values) > 1 else 0
                 means.append(mean)
-                ax.bar(d_index + (g_index - (len(groups) - 1) / 2) * width, mean, width * 0.95, yerr=half,
+                ax.bar(d_index + (g_index - (len(groups) - 1) / 2) * width, mean, width * 0.95,
+                       yerr=clipped_errors([mean], [half]),
                        color="white", edgecolor="0.15", hatch=HATCHES[g_index % len(HATCHES)], capsize=2,
                        error_kw={"elinewidth": 0.8, "ecolor": "0.3"},
                        label=column.split("/", 1)[1] if d_index == 0 else None)
@@ -123,7 +140,7 @@ def flag_rate_figure(runs: pd.DataFrame, out: Path):
                 ax.plot([d_index - 0.45, d_index + 0.45], [line, line], "--", color="0.1", linewidth=1,
                         label="0.8 x highest rate" if d_index == 0 else None)
         ax.set_xticks(range(len(detectors)))
-        ax.set_xticklabels([d.replace(" + ", "\n+ ") for d in detectors], fontsize=7)
+        ax.set_xticklabels([_stacked(d) for d in detectors], fontsize=7)
         ax.set_ylabel("flag rate")
         ax.set_title(dataset, loc="left")
         ax.legend(fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0))
