@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
+os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
 
 
 def fill_store(uri: str, runs: int, folder: Path) -> None:

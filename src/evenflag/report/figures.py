@@ -219,22 +219,25 @@ def critical_difference_figure(result, out: Path, metric: str):
     return paths
 
 
-def first_finished_scores(runs: RunTable, run_id: str | None = None):
-    """The scores artifact of one run (the given one, or the first finished)."""
+def first_finished_scores(runs: RunTable, run_id: str | None = None, tries: int = 20):
+    """The scores artifact of one run: the given one, or the first finished run
+    (in dataset, detector, seed order) whose artifact can be read."""
+    import tempfile
+
+    from mlflow.exceptions import MlflowException
     from mlflow.tracking import MlflowClient
 
     frame = runs.runs
     chosen = frame[frame["run_id"] == run_id] if run_id else frame[frame["status"] == "FINISHED"]
-    if chosen.empty:
-        return None, None
-    row = chosen.sort_values(["dataset", "detector", "seed"]).iloc[0]
     client = MlflowClient(tracking_uri=runs.uri)
-    import tempfile
-
-    with tempfile.TemporaryDirectory() as folder:
-        path = client.download_artifacts(row["run_id"], "scores.parquet", folder)
-        scores = pd.read_parquet(path)
-    return scores, f"{row['dataset']} / {row['detector']} / seed {row['seed']} (run {row['run_id'][:8]})"
+    for row in chosen.sort_values(["dataset", "detector", "seed"]).head(tries).itertuples():
+        with tempfile.TemporaryDirectory() as folder:
+            try:
+                scores = pd.read_parquet(client.download_artifacts(row.run_id, "scores.parquet", folder))
+            except (MlflowException, OSError):
+                continue
+        return scores, f"{row.dataset} / {row.detector} / seed {row.seed} (run {row.run_id[:8]})"
+    return None, None
 
 
 def method_matrix(table: pd.DataFrame, metric: str) -> pd.DataFrame:
