@@ -73,7 +73,8 @@ class TabularEncoder:
             numbers = np.where(np.isnan(numbers), self.fill_, numbers)
             blocks.append((numbers - self.center_) / self.scale_)
         for column, values in self.categorical_.items():
-            codes = pd.Categorical(self._as_category_text(frame[column]), categories=values).codes
+            # -1 for a category first seen here: it encodes as all zeros.
+            codes = pd.Index(values).get_indexer(self._as_category_text(frame[column]))
             onehot = np.zeros((len(frame), len(values)))
             seen = codes >= 0
             onehot[np.flatnonzero(seen), codes[seen]] = 1.0
