@@ -14,7 +14,6 @@ Scratch files go to a temporary folder.
 import argparse
 import os
 import re
-import resource
 import subprocess
 import sys
 import tempfile

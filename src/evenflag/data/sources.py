@@ -22,7 +22,7 @@ import pandas as pd
 
 from evenflag.data import cache
 from evenflag.data.spec import SourceSpec
-from evenflag.errors import ChecksumError, DatasetError, FetchError
+from evenflag.errors import DatasetError, FetchError
 
 BUNDLED_DIR = Path(__file__).parent / "files"
 

@@ -69,8 +69,6 @@ def _set_threads() -> None:
 class _NeuralDetector:
     """Shared training loop. Subclasses define the network and the detection loss."""
 
-    uses_bias = True
-
     def __init__(self, hidden: list[int] | None = None, rep_dim: int = 32, activation: str = "leaky_relu",
                  dropout: float = 0.0, epochs: int = 30, batch_size: int = 256, lr: float = 1e-3,
                  weight_decay: float = 1e-6, early_stopping: int | None = None, device: str = "cpu",
@@ -219,9 +217,6 @@ class _NeuralDetector:
                 f"the embedding collapsed (mean variance {variance:.2e}): its fairness numbers would be meaningless; "
                 "lower detector.weight or lr, or add warm-up epochs")
 
-    def __getstate__(self):
-        return self.__dict__.copy()
-
 
 class AutoencoderDetector(_NeuralDetector):
     """MLP autoencoder; score = mean squared reconstruction error of a row.
@@ -268,8 +263,6 @@ class DeepSVDDDetector(_NeuralDetector):
     >>> bool((np.abs(det.center_) >= det.eps).all())
     True
     """
-
-    uses_bias = False
 
     def __init__(self, objective: str = "one_class", nu: float = 0.1, eps: float = 0.1, warmup_epochs: int = 5,
                  pretrain_epochs: int = 0, **kwargs):
@@ -351,7 +344,6 @@ def center_from_mean(mean, eps: float):
     """The hypersphere centre: coordinates with ``|c_j| < eps`` are pushed to
     ``eps`` with their sign kept (an exact 0 goes to ``+eps``), so that the
     centre is not trivially reachable by zero weights."""
-    torch = _torch()
     c = mean.clone()
     small = c.abs() < eps
     c[small & (c < 0)] = -eps
@@ -379,21 +371,26 @@ class AdversarySpec:
         return _AdversaryState(self, group, rep_dim, device)
 
 
-class _GradientReversal:
-    @staticmethod
-    def apply(z, scale):
-        torch = _torch()
+_REVERSAL = None
 
+
+def _gradient_reversal(z, scale: float):
+    """Identity forward; the gradient is multiplied by ``-scale`` on the way back."""
+    global _REVERSAL
+    torch = _torch()
+    if _REVERSAL is None:
         class Reverse(torch.autograd.Function):
             @staticmethod
-            def forward(ctx, x):
+            def forward(ctx, x, factor):
+                ctx.factor = factor
                 return x.view_as(x)
 
             @staticmethod
             def backward(ctx, grad):
-                return -scale * grad
+                return -ctx.factor * grad, None
 
-        return Reverse.apply(z)
+        _REVERSAL = Reverse
+    return _REVERSAL.apply(z, scale)
 
 
 class _AdversaryState:
@@ -450,7 +447,7 @@ class _AdversaryState:
         if self.spec.mode == "gradient_reversal":
             # One backward pass trains the adversary to predict the group and,
             # through the reversed gradient, the encoder to hide it.
-            logits = self.net(_GradientReversal.apply(zb, weight))
+            logits = self.net(_gradient_reversal(zb, weight))
             loss = self.loss_fn(logits, target)
             self.optimizer.zero_grad(set_to_none=True)  # filled by the encoder's backward pass
             term = loss

@@ -20,7 +20,7 @@ from itertools import combinations, permutations
 import numpy as np
 
 from evenflag.metrics.detection import auroc_from_cumulative
-from evenflag.metrics.inputs import Counts, MetricInput, safe_divide
+from evenflag.metrics.inputs import Counts, MetricInput
 
 
 def _distances(cdf_a, cdf_b, support):

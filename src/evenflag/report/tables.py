@@ -68,7 +68,7 @@ def _best(table: pd.DataFrame, metric: str) -> pd.Series:
 
 
 def _cell(row, metric) -> str:
-    mean, half, n = row[f"{metric}.mean"], row[f"{metric}.ci"], row[f"{metric}.n"]
+    mean, half = row[f"{metric}.mean"], row[f"{metric}.ci"]
     if row["n_finished"] == 0:
         return "failed" if row["n_failed"] else "missing"
     if not np.isfinite(mean):

@@ -9,10 +9,8 @@ failed.
 
 from __future__ import annotations
 
-import math
 import os
 import sys
-import tempfile
 import time
 import traceback
 from pathlib import Path
@@ -62,8 +60,11 @@ def launch(argv: list[str]) -> int:
     if closed:
         print(f"marked {closed} run(s) left RUNNING by an interrupted launch as KILLED")
 
-    with tempfile.TemporaryDirectory(prefix="evenflag-ledger-") as folder:
-        path = Path(folder) / "ledger.jsonl"
+    # The ledger lives under the launch directory (on clusters usually a shared
+    # file system, unlike /tmp), one file per launch, removed at the end.
+    path = Path.cwd() / "outputs" / ".ledgers" / f"{time.strftime('%Y%m%d-%H%M%S')}-{os.getpid()}.jsonl"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    try:
         os.environ[ledger.LEDGER_ENV] = str(path)
         os.environ[ledger.TOTAL_ENV] = str(total)
         os.environ[ledger.START_ENV] = str(time.time())
@@ -71,8 +72,10 @@ def launch(argv: list[str]) -> int:
         os.environ["EVENFLAG_LAUNCH_DIR"] = str(Path.cwd())
         code = _call_hydra(argv)
         entries = ledger.read(path)
-    for key in (ledger.LEDGER_ENV, ledger.TOTAL_ENV, ledger.START_ENV):
-        os.environ.pop(key, None)
+    finally:
+        path.unlink(missing_ok=True)
+        for key in (ledger.LEDGER_ENV, ledger.TOTAL_ENV, ledger.START_ENV):
+            os.environ.pop(key, None)
 
     counts = {s: sum(e["status"] == s for e in entries) for s in ("done", "skipped", "failed")}
     print(f"\nstudy '{first.study}': {counts['done']} done, {counts['skipped']} skipped (already finished), "
@@ -199,7 +202,7 @@ def _count_jobs(overrides: list[str], cfg: DictConfig) -> int:
 def _compose(overrides: list[str], extra_dirs: list[str]) -> DictConfig:
     from hydra import compose, initialize_config_dir
     from hydra.errors import HydraException, MissingConfigException
-    from omegaconf.errors import ConfigKeyError, OmegaConfBaseException, ValidationError
+    from omegaconf.errors import OmegaConfBaseException
 
     search = [f"hydra.searchpath=[{','.join('file://' + str(Path(d).resolve()) for d in extra_dirs)}]"] if extra_dirs else []
     try:

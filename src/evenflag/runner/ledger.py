@@ -21,12 +21,17 @@ def record(entry: dict) -> None:
     if not path:
         return
     line = (json.dumps(entry, default=str) + "\n").encode()
-    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
     try:
-        os.write(fd, line)
-    finally:
-        os.close(fd)
-    done = len(read(path))
+        fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+        try:
+            os.write(fd, line)
+        finally:
+            os.close(fd)
+        done = len(read(path))
+    except OSError:
+        # A job that cannot reach the ledger (another machine without the launch
+        # directory) still finished: the tracking store has it; only the summary misses it.
+        return
     total = int(os.environ.get(TOTAL_ENV, "0") or 0)
     elapsed = time.time() - float(os.environ.get(START_ENV, time.time()))
     eta = elapsed / done * (total - done) if total and done else 0.0
