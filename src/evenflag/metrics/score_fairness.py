@@ -98,8 +98,7 @@ def score_distance(score, group) -> float:
     >>> score_distance([1, 2, 3, 4], ["a", "a", "b", "b"])
     0.5
     """
-    inputs = MetricInput.build(np.zeros(len(score), dtype=int), score, None, group)
-    return float(score_fairness_from_counts(inputs.counts())["score_distance"][0])
+    return _one_value("score_distance", score, group)
 
 
 def score_ks(score, group) -> float:
@@ -110,5 +109,9 @@ def score_ks(score, group) -> float:
     >>> score_ks([1, 2, 3, 4], ["a", "a", "b", "b"])
     1.0
     """
+    return _one_value("score_ks", score, group)
+
+
+def _one_value(key: str, score, group) -> float:
     inputs = MetricInput.build(np.zeros(len(score), dtype=int), score, None, group)
-    return float(score_fairness_from_counts(inputs.counts())["score_ks"][0])
+    return float(score_fairness_from_counts(inputs.counts())[key][0])
