@@ -216,6 +216,9 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("evenflag: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into `head` and the like
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
 
 
 if __name__ == "__main__":
