@@ -36,6 +36,23 @@ BARE_APP = textwrap.dedent('''
     if __name__ == "__main__":
         main()
 ''')
+# The same no-op job, composing evenflag's own config tree: what Hydra itself
+# costs per job for configs of this size, before any evenflag code runs.
+NOOP_ON_OUR_CONFIGS = textwrap.dedent('''
+    import hydra
+    from omegaconf import DictConfig
+    from evenflag.paths import config_dir
+    from evenflag.runner.config import register
+
+    register()
+
+    @hydra.main(config_path=str(config_dir()), config_name="config", version_base="1.3")
+    def main(cfg: DictConfig) -> None:
+        pass
+
+    if __name__ == "__main__":
+        main()
+''')
 
 
 def timed(command, cwd):
@@ -78,6 +95,12 @@ def overhead(scratch: Path, jobs: int):
     detector_b = fit_and_score_seconds(scratch / "outputs" / "tracking" / "mlflow.db", "overhead_b")
     per_b = (ours_b - detector_b) / jobs
     print(f"   with 200 bootstrap resamples (metrics=default): {per_b * 1000:.0f} ms/run = {per_b / per_bare:.2f}x")
+    (scratch / "noop_ours.py").write_text(NOOP_ON_OUR_CONFIGS)
+    timed([sys.executable, "noop_ours.py", "-m", "seed=0"], scratch)
+    noop, _ = timed([sys.executable, "noop_ours.py", "-m", *TRIVIAL, f"seed={seeds}"], scratch)
+    per_noop = noop / jobs
+    print(f"   for scale: a no-op Hydra job composing evenflag's config tree: {per_noop * 1000:.0f} ms/run; "
+          f"evenflag's own share {max(per_ours - per_noop, 0) * 1000:.0f} ms/run")
 
 
 def parallel(scratch: Path):
