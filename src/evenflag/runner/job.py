@@ -66,14 +66,10 @@ def run_job(cfg: DictConfig) -> str:
         # Params first, so a run that fails below still says what it was.
         tracker.log(run_id, flatten({k: v for k, v in resolved.items() if k not in ("tracking", "tags")}), {}, {})
         out = execute(cfg)
-        folder = _output_dir()
-        folder.mkdir(parents=True, exist_ok=True)
-        (folder / "config.yaml").write_text(OmegaConf.to_yaml(resolved))
-        out.scores.to_parquet(folder / "scores.parquet", index=False)
-        artifacts = folder / "artifacts"
-        artifacts.mkdir(exist_ok=True)
-        for file in ("config.yaml", "scores.parquet"):
-            os.replace(folder / file, artifacts / file)
+        artifacts = _output_dir() / "artifacts"  # under the Hydra job's own output folder
+        artifacts.mkdir(parents=True, exist_ok=True)
+        (artifacts / "config.yaml").write_text(OmegaConf.to_yaml(resolved))
+        out.scores.to_parquet(artifacts / "scores.parquet", index=False)
         metrics = {**out.metrics, **{f"time.{k}": v for k, v in out.timings.items()}}
         notes = {f"{TAG}{k}": v for k, v in out.notes.items()}
         notes[f"{TAG}groups"] = ",".join(map(str, out.dataset.group.cat.categories))
