@@ -16,18 +16,9 @@ import math
 
 import numpy as np
 
-from evenflag.metrics.inputs import Counts, MetricInput, safe_divide, warn_undefined
+from evenflag.metrics.inputs import Counts, MetricInput, safe_divide, spread, warn_undefined
 
 FOUR_FIFTHS = 0.8
-
-
-def _gap(rates: np.ndarray) -> np.ndarray:
-    with np.errstate(all="ignore"):
-        defined = np.isfinite(rates)
-        hi = np.where(defined, rates, -np.inf).max(axis=-1)
-        lo = np.where(defined, rates, np.inf).min(axis=-1)
-        gap = hi - lo
-    return np.where(defined.sum(axis=-1) >= 2, gap, np.nan)
 
 
 def flag_fairness_from_counts(counts: Counts) -> dict[str, np.ndarray]:
@@ -44,9 +35,9 @@ def flag_fairness_from_counts(counts: Counts) -> dict[str, np.ndarray]:
         "flag_rate_ratio": ratio,
         "flag_rate_gap": hi - lo,
         "four_fifths_pass": np.where(np.isfinite(ratio), passes.astype(float), np.nan),
-        "hit_rate_gap": _gap(safe_divide(counts.flagged[:, :, 1], counts.total[:, :, 1])),
-        "false_flag_gap": _gap(safe_divide(counts.flagged[:, :, 0], counts.total[:, :, 0])),
-        "group_precision_gap": _gap(safe_divide(counts.flagged[:, :, 1], flagged)),
+        "hit_rate_gap": spread(safe_divide(counts.flagged[:, :, 1], counts.total[:, :, 1])),
+        "false_flag_gap": spread(safe_divide(counts.flagged[:, :, 0], counts.total[:, :, 0])),
+        "group_precision_gap": spread(safe_divide(counts.flagged[:, :, 1], flagged)),
     }
     for g, name in enumerate(counts.group_names):
         out[f"flag_rate/{name}"] = rate[:, g]
@@ -107,11 +98,11 @@ def flips_to_parity(flagged: np.ndarray, rows: np.ndarray, line: float = FOUR_FI
     return float(m)
 
 
-def flag_tests(inputs: MetricInput) -> dict[str, float | str]:
-    """Significance of the worst pair and the flips to parity (point estimate only)."""
+def flag_tests(counts: Counts) -> dict[str, float | str]:
+    """Significance of the worst pair and the flips to parity (point estimate only,
+    from the unweighted counts of ``MetricInput.counts()``)."""
     from scipy import stats  # imported here: scipy.stats costs ~0.7 s to import in every worker
 
-    counts = inputs.counts()
     flagged = counts.flagged.sum(axis=2)[0].astype(int)
     rows = counts.total.sum(axis=2)[0].astype(int)
     if flagged.sum() == 0:

@@ -172,6 +172,16 @@ class Counts:
     group_names: list[str]
 
 
+def spread(values: np.ndarray) -> np.ndarray:
+    """Largest minus smallest defined value along the last axis; NaN unless at
+    least two values are defined (the gap between groups that have the metric)."""
+    with np.errstate(all="ignore"):
+        defined = np.isfinite(values)
+        hi = np.where(defined, values, -np.inf).max(axis=-1)
+        lo = np.where(defined, values, np.inf).min(axis=-1)
+    return np.where(defined.sum(axis=-1) >= 2, hi - lo, np.nan)
+
+
 def safe_divide(numerator, denominator):
     numerator = np.asarray(numerator, dtype=np.float64)
     denominator = np.asarray(denominator, dtype=np.float64)

@@ -20,7 +20,7 @@ from itertools import combinations, permutations
 import numpy as np
 
 from evenflag.metrics.detection import auroc_from_cumulative
-from evenflag.metrics.inputs import Counts, MetricInput
+from evenflag.metrics.inputs import Counts, MetricInput, spread
 
 
 def _distances(cdf_a, cdf_b, support):
@@ -52,21 +52,13 @@ def score_fairness_from_counts(counts: Counts, with_pairs: bool = False):
     group_auc = auroc_from_cumulative(pos, neg, cum_neg)    # (B, G)
     for g, name in enumerate(names):
         out[f"auroc/{name}"] = group_auc[:, g]
-    with np.errstate(all="ignore"):
-        defined = np.isfinite(group_auc)
-        spread = np.where(defined, group_auc, -np.inf).max(axis=1) - np.where(defined, group_auc, np.inf).min(axis=1)
-    out["group_auroc_gap"] = np.where(defined.sum(axis=1) >= 2, spread, np.nan)
+    out["group_auroc_gap"] = spread(group_auc)
     cross = []
     for a, b in permutations(range(len(names)), 2):
         value = auroc_from_cumulative(pos[:, a], neg[:, b], cum_neg[:, b])
         out[f"cross_auroc/{names[a]}_vs_{names[b]}"] = value
         cross.append(value)
-    cross = np.stack(cross, axis=1)
-    with np.errstate(all="ignore"):
-        ok = np.isfinite(cross)
-        out["cross_auroc_gap"] = np.where(
-            ok.sum(axis=1) >= 2,
-            np.where(ok, cross, -np.inf).max(axis=1) - np.where(ok, cross, np.inf).min(axis=1), np.nan)
+    out["cross_auroc_gap"] = spread(np.stack(cross, axis=1))
     return (out, pairs) if with_pairs else out
 
 

@@ -95,7 +95,7 @@ def evaluate(families, label, score, flag, group, embedding=None, n_bootstrap: i
     if "flag_fairness" in families:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UndefinedMetricWarning)
-            tests = flag_tests(inputs)
+            tests = flag_tests(counts)  # the point-estimate counts, not computed again
         notes.update({k: v for k, v in tests.items() if isinstance(v, str)})
         values.update({k: float(v) for k, v in tests.items() if not isinstance(v, str)})
     if "leakage" in families and inputs.embedding is not None:
