@@ -50,14 +50,14 @@ def detection_from_counts(counts: Counts) -> dict[str, np.ndarray]:
         "flag_precision": precision,
         "flag_recall": recall,
         "flag_f1": safe_divide(2 * true_flags, all_flags + anomalies),
-        "precision_at_k": precision_at_k_from_blocks(pos, neg, anomalies),
+        "r_precision": r_precision_from_blocks(pos, neg, anomalies),
     }
 
 
-def precision_at_k_from_blocks(pos, neg, k) -> np.ndarray:
-    """Share of anomalies among the ``k`` highest scores (``k`` = number of true
-    anomalies: R-precision). A tie block that straddles the cut counts in
-    proportion."""
+def r_precision_from_blocks(pos, neg, k) -> np.ndarray:
+    """R-precision: the share of anomalies among the ``k`` highest scores, ``k``
+    = the number of true anomalies. A tie block that straddles the cut counts
+    in proportion."""
     pos_desc, all_desc = pos[..., ::-1], (pos + neg)[..., ::-1]
     cum_all = np.cumsum(all_desc, axis=-1)
     cum_pos = np.cumsum(pos_desc, axis=-1)

@@ -8,6 +8,16 @@ Definitions (weighted counts per group g; l = label):
 * ``flag_rate_gap`` = highest minus lowest flag rate
 * ``hit_rate_gap``: gap in the share of true anomalies flagged (recall)
 * ``false_flag_gap``: gap in the share of normal rows flagged
+
+These summaries take the lowest and the highest group, so they can never fall
+below parity and get no interval. For inference each group is compared with a
+stated reference group (the largest by default, ``metrics.reference_group``):
+
+* ``flag_rate_diff/<g>`` = flag rate of g minus that of the reference;
+* ``flag_rate_vs_reference/<g>`` = flag rate of g over that of the reference;
+* ``hit_rate_diff/<g>``, ``false_flag_diff/<g>`` likewise.
+
+Their intervals can cover parity (0, or 1 for the ratio).
 """
 
 from __future__ import annotations
@@ -16,9 +26,8 @@ import math
 
 import numpy as np
 
+from evenflag.metrics.facts import FOUR_FIFTHS
 from evenflag.metrics.inputs import Counts, MetricInput, safe_divide, spread, warn_undefined
-
-FOUR_FIFTHS = 0.8
 
 
 def flag_fairness_from_counts(counts: Counts) -> dict[str, np.ndarray]:
@@ -39,12 +48,51 @@ def flag_fairness_from_counts(counts: Counts) -> dict[str, np.ndarray]:
         "false_flag_gap": spread(safe_divide(counts.flagged[:, :, 0], counts.total[:, :, 0])),
         "group_precision_gap": spread(safe_divide(counts.flagged[:, :, 1], flagged)),
     }
+    hit = safe_divide(counts.flagged[:, :, 1], counts.total[:, :, 1])
+    false_flag = safe_divide(counts.flagged[:, :, 0], counts.total[:, :, 0])
+    ref = counts.reference
     for g, name in enumerate(counts.group_names):
+        out[f"base_rate/{name}"] = safe_divide(counts.total[:, g, 1], rows[:, g])
         out[f"flag_rate/{name}"] = rate[:, g]
-        out[f"hit_rate/{name}"] = safe_divide(counts.flagged[:, g, 1], counts.total[:, g, 1])
-        out[f"false_flag_rate/{name}"] = safe_divide(counts.flagged[:, g, 0], counts.total[:, g, 0])
+        out[f"hit_rate/{name}"] = hit[:, g]
+        out[f"false_flag_rate/{name}"] = false_flag[:, g]
         out[f"precision/{name}"] = safe_divide(counts.flagged[:, g, 1], flagged[:, g])
+        if g != ref:
+            out[f"flag_rate_diff/{name}"] = rate[:, g] - rate[:, ref]
+            out[f"flag_rate_vs_reference/{name}"] = safe_divide(rate[:, g], rate[:, ref])
+            out[f"hit_rate_diff/{name}"] = hit[:, g] - hit[:, ref]
+            out[f"false_flag_diff/{name}"] = false_flag[:, g] - false_flag[:, ref]
     return out
+
+
+def rate_counts(counts: Counts, key: str) -> list[tuple[float, float]]:
+    """The (successes, trials) behind a per-group rate key or a signed key
+    (the group's pair first, then the reference group's), from point counts.
+
+    Examples
+    --------
+    >>> inputs = MetricInput.build([0, 1, 0, 0], None, [1, 1, 0, 0], ["a", "a", "b", "b"])
+    >>> rate_counts(inputs.counts(), "flag_rate_diff/b")
+    [(0.0, 2.0), (2.0, 2.0)]
+    """
+    base, _, name = key.partition("/")
+    flagged, total = counts.flagged[0], counts.total[0]
+    pick = {
+        "flag_rate": lambda g: (flagged[g].sum(), total[g].sum()),
+        "hit_rate": lambda g: (flagged[g, 1], total[g, 1]),
+        "false_flag_rate": lambda g: (flagged[g, 0], total[g, 0]),
+        "precision": lambda g: (flagged[g, 1], flagged[g].sum()),
+        "base_rate": lambda g: (total[g, 1], total[g].sum()),
+    }
+    signed = {"flag_rate_diff": "flag_rate", "flag_rate_vs_reference": "flag_rate", "hit_rate_diff": "hit_rate",
+              "false_flag_diff": "false_flag_rate"}
+    if base in ("flag_precision", "flag_recall"):
+        true_flags = flagged[:, 1].sum()
+        return [(true_flags, flagged.sum() if base == "flag_precision" else total[:, 1].sum())]
+    g = counts.group_names.index(name)
+    if base in signed:
+        return [tuple(map(float, pick[signed[base]](g))), tuple(map(float, pick[signed[base]](counts.reference)))]
+    return [tuple(map(float, pick[base](g)))]
 
 
 def worst_pair(counts: Counts) -> tuple[int, int]:
@@ -70,32 +118,51 @@ def two_proportion_z(x1: int, n1: int, x2: int, n2: int) -> tuple[float, float]:
     return z, float(math.erfc(abs(z) / math.sqrt(2)))  # two-sided normal tail, = 2 * norm.sf(|z|)
 
 
-def flips_to_parity(flagged: np.ndarray, rows: np.ndarray, line: float = FOUR_FIFTHS) -> float:
-    """Fewest flags to move from the highest-rate group to the lowest-rate group
-    (the worst pair; other groups held fixed) so that the pair's flag-rate ratio
-    reaches ``line``. The number of flags stays the same: this is the practical
-    size of a gap under a fixed review budget. NaN if no such move exists.
+def flips_to_parity(flagged, rows, line: float = FOUR_FIFTHS) -> float:
+    """Fewest flags to move from some rows to others (the total number of flags
+    fixed, each row flagged at most once) so that every group's flag rate is at
+    least ``line`` times the highest group rate. This is the practical size of a
+    gap under a fixed review budget. NaN if no such move exists; 0 if nothing is
+    flagged or the rule already passes.
+
+    Exact: for every possible highest rate M (some count over some group size)
+    each group's count must lie in [ceil(line M n_g), floor(M n_g)]; the
+    cheapest counts there are the original ones clipped into that range, plus
+    one move per flag still to be placed or removed to keep the total. The
+    answer is the minimum over M. Integer arithmetic (line = 4/5) keeps the
+    boundary exact.
 
     Examples
     --------
-    >>> flips_to_parity(np.array([10, 30]), np.array([100, 100]))
+    >>> flips_to_parity([10, 30], [100, 100])
     8.0
+    >>> flips_to_parity([2, 6], [50, 50])
+    2.0
+    >>> flips_to_parity([2, 2], [59, 34])  # 4 flags cannot be shared within the line
+    nan
     """
+    from fractions import Fraction
+
     flagged = np.asarray(flagged, dtype=np.int64)
     rows = np.asarray(rows, dtype=np.int64)
-    if flagged.sum() == 0:
+    total = int(flagged.sum())
+    if total == 0:
         return 0.0
-    rate = flagged / rows
-    lo, hi = int(rate.argmin()), int(rate.argmax())
-    f_lo, n_lo, f_hi, n_hi = flagged[lo], rows[lo], flagged[hi], rows[hi]
-    if f_lo * n_hi >= line * f_hi * n_lo - 1e-9:
-        return 0.0
-    # Smallest m with (f_lo + m) / n_lo >= line * (f_hi - m) / n_hi, i.e.
-    # m >= (line * f_hi * n_lo - f_lo * n_hi) / (n_hi + line * n_lo).
-    m = int(math.ceil((line * f_hi * n_lo - f_lo * n_hi) / (n_hi + line * n_lo) - 1e-9))
-    if m > f_hi or f_lo + m > n_lo:
-        return float("nan")
-    return float(m)
+    ratio = Fraction(line).limit_denominator(1000)
+    a, b = ratio.numerator, ratio.denominator            # line = a / b
+    best = None
+    for h, n_h in enumerate(rows):                       # the highest rate is k / n_h
+        k = np.arange(1, n_h + 1, dtype=np.int64)[:, None]
+        upper = np.minimum((k * rows) // n_h, rows)                    # floor(M n_g)
+        lower = (a * k * rows + b * n_h - 1) // (b * n_h)              # ceil(line M n_g)
+        feasible = (lower <= upper).all(axis=1) & (lower.sum(axis=1) <= total) & (upper.sum(axis=1) >= total)
+        if not feasible.any():
+            continue
+        clipped = np.clip(flagged, lower, upper)
+        cost = np.abs(clipped - flagged).sum(axis=1) + np.abs(clipped.sum(axis=1) - total)
+        cheapest = int(cost[feasible].min())
+        best = cheapest if best is None else min(best, cheapest)
+    return float("nan") if best is None else float(best // 2)
 
 
 def flag_tests(counts: Counts) -> dict[str, float | str]:
@@ -108,6 +175,11 @@ def flag_tests(counts: Counts) -> dict[str, float | str]:
     if flagged.sum() == 0:
         warn_undefined("flag_rate_ratio", "no row is flagged")
     lo, hi = worst_pair(counts) if flagged.sum() else (0, 1)
+    if lo == hi:  # every group has the same rate: compare the first two, say so
+        lo, hi = 0, 1
+        pair = "all groups equal"
+    else:
+        pair = f"{counts.group_names[lo]} vs {counts.group_names[hi]}"
     z, p = two_proportion_z(flagged[hi], rows[hi], flagged[lo], rows[lo])
     table = [[flagged[hi], rows[hi] - flagged[hi]], [flagged[lo], rows[lo] - flagged[lo]]]
     return {
@@ -115,7 +187,7 @@ def flag_tests(counts: Counts) -> dict[str, float | str]:
         "worst_pair_z_p": p,
         "worst_pair_fisher_p": float(stats.fisher_exact(table).pvalue),
         "flips_to_parity": flips_to_parity(flagged, rows),
-        "flag_rate_ratio.pair": f"{counts.group_names[lo]} vs {counts.group_names[hi]}",
+        "flag_rate_ratio.pair": pair,
     }
 
 

@@ -55,9 +55,12 @@ class MetricInput:
     group: np.ndarray
     group_names: list[str]
     embedding: np.ndarray | None = None
+    reference: int = 0
+    rule: "FlagRule | None" = None
 
     @classmethod
-    def build(cls, label, score=None, flag=None, group=None, embedding=None) -> "MetricInput":
+    def build(cls, label, score=None, flag=None, group=None, embedding=None, reference_group=None,
+              rule: "FlagRule | None" = None) -> "MetricInput":
         label = np.asarray(label)
         n = len(label)
         if n == 0:
@@ -81,7 +84,16 @@ class MetricInput:
             embedding = np.asarray(embedding, dtype=np.float64)
             if embedding.ndim != 2 or len(embedding) != n:
                 raise MetricInputError(f"embedding has shape {embedding.shape}; expected ({n}, d)")
-        return cls(label.astype(np.int8), score, flag, codes.astype(np.int64), [str(v) for v in names], embedding)
+        names = [str(v) for v in names]
+        sizes = np.bincount(codes, minlength=len(names))
+        if reference_group is None:
+            reference = int(np.argmax(sizes))  # the largest group; ties go to the first name
+        elif str(reference_group) in names:
+            reference = names.index(str(reference_group))
+        else:
+            raise MetricInputError(f"metrics.reference_group '{reference_group}' is not a group value here; "
+                                   f"use one of {names} or null (the largest group)")
+        return cls(label.astype(np.int8), score, flag, codes.astype(np.int64), names, embedding, reference, rule)
 
     @property
     def n_groups(self) -> int:
@@ -127,7 +139,8 @@ class MetricInput:
                 masked = np.where(cell_sorted == c, w_sorted, 0)
                 summed = masked if nb == len(order) else np.add.reduceat(masked, starts, axis=1)
                 blocks[:, c // 2, c % 2, :] = summed
-        return Counts(total=total, flagged=flagged, blocks=blocks, values=values, group_names=self.group_names)
+        return Counts(total=total, flagged=flagged, blocks=blocks, values=values, group_names=self.group_names,
+                      reference=self.reference)
 
     def binned_cells(self, n_bins: int):
         """Row counts per (group, label, score bin, flag), bins cut at pooled score
@@ -149,7 +162,7 @@ class MetricInput:
         return cells, bin_mean
 
 
-def counts_from_cells(cells: np.ndarray, bin_mean: np.ndarray, group_names: list[str]) -> "Counts":
+def counts_from_cells(cells: np.ndarray, bin_mean: np.ndarray, group_names: list[str], reference: int = 0) -> "Counts":
     """Counts for a batch of (B, G, 2, bins, 2) cell tables (last axis = flag)."""
     cells = cells.astype(np.float64)
     return Counts(
@@ -158,6 +171,7 @@ def counts_from_cells(cells: np.ndarray, bin_mean: np.ndarray, group_names: list
         blocks=cells.sum(axis=4),
         values=bin_mean,
         group_names=group_names,
+        reference=reference,
     )
 
 
@@ -170,6 +184,45 @@ class Counts:
     blocks: np.ndarray    # (B, G, 2, n_blocks)
     values: np.ndarray    # (n_blocks,) distinct scores, ascending
     group_names: list[str]
+    reference: int = 0    # index of the reference group of the signed per-group keys
+
+
+@dataclass(frozen=True)
+class FlagRule:
+    """How the flags were set from the scores, so a resample can set them again.
+
+    ``top_fraction``: the ``fraction`` of rows with the highest scores (rows tied
+    with the last flagged score are flagged too); ``top_anomalies``: as many rows
+    as there are anomalies. Flags set any other way (a threshold learned on
+    other rows, per-group thresholds) have no rule and stay as they are.
+    """
+
+    kind: str
+    fraction: float = 0.0
+
+
+def rethreshold(counts: Counts, rule: FlagRule) -> Counts:
+    """The same counts with ``flagged`` set again by ``rule`` in every weight vector.
+
+    The threshold of a top-fraction policy is itself estimated from the test
+    rows; keeping the original flags in a resample treats it as known and
+    overstates the variance of a difference between groups (the fixed number of
+    flags makes group rates move against each other).
+    """
+    pooled = counts.blocks.sum(axis=(1, 2))                     # (B, nb)
+    if rule.kind == "top_fraction":
+        k = np.round(rule.fraction * pooled.sum(axis=1))
+    elif rule.kind == "top_anomalies":
+        k = counts.total[:, :, 1].sum(axis=1)
+    else:
+        raise MetricInputError(f"unknown flag rule '{rule.kind}'; use top_fraction or top_anomalies")
+    from_top = np.cumsum(pooled[:, ::-1], axis=1)
+    cut = np.minimum((from_top < k[:, None]).sum(axis=1), pooled.shape[1] - 1)  # blocks above the cut, from the top
+    suffix = np.cumsum(counts.blocks[..., ::-1], axis=-1, dtype=np.float64)
+    flagged = np.take_along_axis(suffix, cut[:, None, None, None], axis=-1)[..., 0]
+    flagged = np.where((k > 0)[:, None, None], flagged, 0.0)
+    return Counts(total=counts.total, flagged=flagged, blocks=counts.blocks, values=counts.values,
+                  group_names=counts.group_names, reference=counts.reference)
 
 
 def spread(values: np.ndarray) -> np.ndarray:

@@ -1,16 +1,27 @@
 """Threshold-free fairness: how differently scores fall on each group.
 
 * ``score_distance``: Wasserstein-1 distance between two groups' scores after
-  mapping every score to its pooled empirical quantile in [0, 1]. Only the
-  order of scores matters, so it is unchanged by any increasing transform and
-  comparable across detectors.
+  mapping every score s to its pooled empirical CDF value F(s) = share of all
+  test rows (every group pooled) with a score <= s. Tied scores therefore share
+  one value, the highest rank of the tie divided by n. Only the order of
+  scores matters, so it is unchanged by any increasing transform and
+  comparable across detectors. It lies in [0, 0.5]: 0 when the groups' scores
+  are identically distributed, 0.5 when every score of one group lies above
+  every score of the other (whatever the group sizes).
 * ``score_distance_raw``: the same on raw scores (scipy's definition).
 * ``score_ks``: two-sample Kolmogorov-Smirnov statistic.
 * ``group_auroc_gap`` and ``cross_auroc/<a>_vs_<b>`` (anomalies of group a
   ranked against normal rows of group b).
 
-With more than two groups each distance is the largest over pairs; the pair
-is named in ``<key>.pair``.
+With more than two groups each distance is the largest over pairs of groups
+(every pair measured on the same pooled scale); the pair is named in
+``<key>.pair``. Distances are never negative, so they get no interval. For
+inference each group is compared with the reference group (see
+flag_fairness.py) by signed keys whose intervals can cover 0:
+
+* ``score_shift/<g>``: mean pooled quantile of g minus that of the reference
+  (|score_shift| <= score_distance for the same pair);
+* ``auroc_diff/<g>``: AUROC within g minus AUROC within the reference.
 """
 
 from __future__ import annotations
@@ -35,16 +46,28 @@ def score_fairness_from_counts(counts: Counts, with_pairs: bool = False):
     pooled_cdf = np.cumsum(pooled, axis=-1) / pooled.sum(axis=-1, keepdims=True)
     group_cdf = np.cumsum(per_group, axis=-1) / np.maximum(per_group.sum(axis=-1, keepdims=True), 1e-300)
     raw_support = np.broadcast_to(counts.values, pooled.shape)
-    best = {"score_distance": None, "score_distance_raw": None, "score_ks": None}
     names = counts.group_names
-    for a, b in combinations(range(len(names)), 2):
+    out: dict[str, np.ndarray] = {}
+    pairs: dict[str, str] = {}
+    pair_index = list(combinations(range(len(names)), 2))
+    by_key = {"score_distance": [], "score_distance_raw": [], "score_ks": []}
+    for a, b in pair_index:
         rank_w1, ks = _distances(group_cdf[:, a], group_cdf[:, b], pooled_cdf)
         raw_w1, _ = _distances(group_cdf[:, a], group_cdf[:, b], raw_support)
-        for key, value in (("score_distance", rank_w1), ("score_distance_raw", raw_w1), ("score_ks", ks)):
-            if best[key] is None or value[0] > best[key][0][0]:
-                best[key] = (value, f"{names[a]} vs {names[b]}")
-    out = {key: value for key, (value, _) in best.items()}
-    pairs = {f"{key}.pair": pair for key, (_, pair) in best.items()}
+        by_key["score_distance"].append(rank_w1)
+        by_key["score_distance_raw"].append(raw_w1)
+        by_key["score_ks"].append(ks)
+    for key, values in by_key.items():
+        stacked = np.stack(values, axis=1)                  # (B, pairs)
+        out[key] = stacked.max(axis=1)                      # the largest pair in every weight vector
+        a, b = pair_index[int(np.argmax(stacked[0]))]
+        pairs[f"{key}.pair"] = f"{names[a]} vs {names[b]}"
+
+    # Signed location shift on the pooled-quantile scale, against the reference group.
+    sizes = per_group.sum(axis=-1)
+    mean_quantile = np.einsum("bgk,bk->bg", per_group, pooled_cdf) / np.maximum(sizes, 1e-300)
+    mean_quantile = np.where(sizes > 0, mean_quantile, np.nan)
+    ref = counts.reference
 
     pos = counts.blocks[:, :, 1, :]
     neg = counts.blocks[:, :, 0, :]
@@ -52,6 +75,9 @@ def score_fairness_from_counts(counts: Counts, with_pairs: bool = False):
     group_auc = auroc_from_cumulative(pos, neg, cum_neg)    # (B, G)
     for g, name in enumerate(names):
         out[f"auroc/{name}"] = group_auc[:, g]
+        if g != ref:
+            out[f"score_shift/{name}"] = mean_quantile[:, g] - mean_quantile[:, ref]
+            out[f"auroc_diff/{name}"] = group_auc[:, g] - group_auc[:, ref]
     out["group_auroc_gap"] = spread(group_auc)
     cross = []
     for a, b in permutations(range(len(names)), 2):
