@@ -7,7 +7,15 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from evenflag.report.stats import friedman_from_ranks, friedman_nemenyi, nemenyi_q, wilcoxon_pair
+from evenflag.report.stats import (
+    cd_diagram_reason,
+    friedman_from_ranks,
+    friedman_nemenyi,
+    friedman_permutation_p,
+    nemenyi_q,
+    smallest_wilcoxon_p,
+    wilcoxon_datasets,
+)
 from tests.runner_helpers import REPO, client_for, evenflag, runs_of
 
 CONFIGS = str(REPO / "tests" / "configs")
@@ -28,6 +36,16 @@ def store(tmp_path_factory):
     assert report.returncode == 0, report.stderr
     tradeoff = evenflag(cwd, "report", "--study", "rep_weights", "--out", str(cwd / "report_weights"))
     assert tradeoff.returncode == 0, tradeoff.stderr
+    # Two configurations of one detector (protocol and threshold differ), then the
+    # same cell and seed run again with rerun=true: a duplicate, not a new seed.
+    cells = evenflag(cwd, "run", "-m", "dataset=synthetic_claims", "dataset.source.rows=800", "metrics=quick",
+                     "study=cells", "seed=0,1", "protocol=one_class,contaminated", "threshold=top_fraction,true_rate")
+    assert cells.returncode == 0, cells.stdout[-3000:] + cells.stderr[-3000:]
+    again = evenflag(cwd, "run", "dataset=synthetic_claims", "dataset.source.rows=800", "metrics=quick",
+                     "study=cells", "seed=0", "protocol=one_class", "threshold=top_fraction", "rerun=true")
+    assert again.returncode == 0, again.stdout[-3000:] + again.stderr[-3000:]
+    cell_report = evenflag(cwd, "report", "--study", "cells", "--memo", "--out", str(cwd / "report_cells"))
+    assert cell_report.returncode == 0, cell_report.stderr
     return cwd, report.stdout
 
 
@@ -74,10 +92,17 @@ def test_latex_is_a_tabular_with_the_right_column_count(store):
 
 def test_figures_are_written(store):
     cwd, _ = store
-    for name in ("flag_rates", "score_ecdf", "critical_difference"):
+    for name in ("flag_rates", "score_ecdf"):
         png = cwd / "report" / f"{name}.png"
         assert png.stat().st_size > 5000 and png.read_bytes()[:4] == b"\x89PNG"
         assert "<svg" in (cwd / "report" / f"{name}.svg").read_text()[:2000]
+    # Two datasets cannot support a critical-difference diagram: with the 3 methods
+    # that have results the exact Friedman p is at least 1/6, and the Nemenyi CD
+    # (2.343 * sqrt(12 / 12) = 2.34, Demsar 2006) exceeds the largest rank gap (2).
+    # The diagram is left out and the memo says why.
+    memo = (cwd / "report" / "memo.md").read_text()
+    assert not (cwd / "report" / "critical_difference.png").exists()
+    assert "No critical-difference diagram:" in memo
     assert (cwd / "report_weights" / "tradeoff.png").stat().st_size > 5000
 
 
@@ -87,7 +112,7 @@ def test_memo_has_metadata_reading_figures_and_caution(store):
     runs = runs_of(client_for(cwd), "rep")
     for sha in {r.data.tags["evenflag.data_sha256"] for r in runs}:
         assert sha in memo
-    assert "## Reading" in memo and "ranks anomalies best" in memo
+    assert "## Reading" in memo and "has the highest mean AUROC" in memo
     assert "four-fifths rule is a rule of thumb, not a legal finding" in memo
     assert "qualified counsel" in memo
     for image in re.findall(r"!\[.*\]\((.*)\)", memo):
@@ -123,15 +148,100 @@ def test_friedman_statistic_matches_scipy_without_ties():
     assert ours.chi2_f == pytest.approx(reference.statistic, rel=1e-10)
 
 
-def test_wilcoxon_matches_scipy_on_the_same_pairs(store):
-    cwd, _ = store
-    from evenflag.report.collect import load_runs
-
-    table = load_runs(f"sqlite:///{cwd / 'outputs' / 'tracking' / 'mlflow.db'}", ["rep"]).runs
-    ours = wilcoxon_pair(table, "isolation_forest", "CovarianceDistanceDetector", "auroc")
-    finished = table[table["status"] == "FINISHED"]
-    a = finished[finished["detector"] == "isolation_forest"].sort_values(["dataset", "seed"])["auroc"].to_numpy()
-    b = finished[finished["detector"] == "CovarianceDistanceDetector"].sort_values(["dataset", "seed"])["auroc"].to_numpy()
-    reference = stats.wilcoxon(a, b)  # reference library: scipy.stats.wilcoxon
-    assert ours["n"] == 6
+def test_wilcoxon_over_datasets_matches_scipy():
+    rng = np.random.default_rng(3)
+    matrix = pd.DataFrame(rng.random((8, 3)), columns=["a", "b", "c"], index=[f"d{i}" for i in range(8)])
+    ours = wilcoxon_datasets(matrix, "a", "b")
+    reference = stats.wilcoxon(matrix["a"], matrix["b"])  # reference library: scipy.stats.wilcoxon
+    assert ours["n"] == 8
     assert ours["p_value"] == pytest.approx(reference.pvalue) and ours["statistic"] == pytest.approx(reference.statistic)
+    # The exact signed-rank test with n pairs cannot go below 2 / 2**n (all signs equal):
+    # with 5 datasets that is 0.0625, so 0.05 is out of reach.
+    assert smallest_wilcoxon_p(5) == pytest.approx(stats.wilcoxon([1, 2, 3, 4, 5], [0, 0, 0, 0, 0]).pvalue)
+
+
+def _null_study(rng, n_datasets=10, seeds=5):
+    """Runs of two methods with no difference on average over datasets: each
+    dataset favours one method by its own amount (mean 0), seeds add noise."""
+    rows = []
+    for d in range(n_datasets):
+        level, favour = rng.normal(0.7, 0.05), rng.normal(0, 0.02)
+        for seed in range(seeds):
+            for method, shift in (("plain", 0.0), ("variant", favour)):
+                rows.append({"dataset": f"d{d}", "detector": method, "weight": np.nan, "settings": "",
+                             "seed": seed, "status": "FINISHED", "error": "",
+                             "auroc": level + shift + rng.normal(0, 0.005)})
+    return pd.DataFrame(rows)
+
+
+def test_wilcoxon_over_datasets_holds_its_false_positive_rate_under_the_null():
+    # Simulation with a known truth (no difference between methods over datasets):
+    # a valid 5% test rejects in about 5% of studies. Pairing every (dataset, seed)
+    # treats seeds as independent evidence and rejects far more often.
+    from evenflag.report.figures import method_matrix
+    from evenflag.report.tables import aggregate
+
+    rng = np.random.default_rng(11)
+    ours = seedwise = 0
+    studies = 400
+    for _ in range(studies):
+        runs = _null_study(rng)
+        matrix = method_matrix(aggregate(runs, ["auroc"]), "auroc")
+        ours += wilcoxon_datasets(matrix, "variant", "plain")["p_value"] < 0.05
+        a = runs[runs["detector"] == "variant"].sort_values(["dataset", "seed"])["auroc"].to_numpy()
+        b = runs[runs["detector"] == "plain"].sort_values(["dataset", "seed"])["auroc"].to_numpy()
+        seedwise += stats.wilcoxon(a, b).pvalue < 0.05
+    # 400 studies: a 5% test gives 20 +/- 9 rejections (binomial, 2 sd).
+    assert ours / studies <= 0.075
+    assert seedwise / studies >= 0.2
+
+
+def test_friedman_exact_p_equals_enumeration():
+    # Under no difference every ordering of each dataset's ranks is equally likely;
+    # enumerate all of them and count statistics at least as large (definition of
+    # the permutation test, e.g. Hollander and Wolfe, Nonparametric Statistical Methods).
+    from itertools import permutations, product
+
+    rng = np.random.default_rng(5)
+    for n, k in ((2, 3), (3, 3), (3, 4), (4, 3)):
+        values = np.round(rng.random((n, k)), 1)  # rounding makes ties
+        ranks = np.vstack([stats.rankdata(-row) for row in values])
+        observed = np.sum(ranks.sum(axis=0) ** 2)
+        orders = [sorted(set(permutations(row.tolist()))) for row in ranks]
+        hits = total = 0
+        for choice in product(*[range(len(o)) for o in orders]):
+            sums = np.sum([orders[i][c] for i, c in enumerate(choice)], axis=0)
+            total += 1
+            hits += np.sum(sums ** 2) >= observed - 1e-9
+        p, method = friedman_permutation_p(ranks)
+        assert method == "exact permutation"
+        assert p == pytest.approx(hits / total, abs=1e-12)
+    # Two datasets ranking three methods the same way: p = 1/6, not 0.
+    perfect = friedman_nemenyi(pd.DataFrame([[0.9, 0.8, 0.7], [0.9, 0.8, 0.7]], columns=list("abc")))
+    assert perfect.p_value == pytest.approx(1 / 6)
+    assert np.isnan(perfect.f_f)
+    assert "does not reject" in cd_diagram_reason(perfect)
+
+
+def test_friedman_statistic_matches_scipy_with_ties():
+    # Reference library: scipy.stats.friedmanchisquare, which applies the tie correction.
+    rng = np.random.default_rng(2)
+    scores = pd.DataFrame(np.round(rng.random((9, 4)), 1), columns=list("abcd"))
+    ours = friedman_nemenyi(scores, higher_is_better=True)
+    reference = stats.friedmanchisquare(*[scores[c] for c in scores.columns])
+    assert ours.chi2_f == pytest.approx(reference.statistic, rel=1e-10)
+
+
+def test_cells_never_pool_configurations_and_count_a_seed_once(store):
+    cwd, _ = store
+    table = pd.read_csv(cwd / "report_cells" / "table.csv").fillna({"settings": ""})
+    # 2 protocols x 2 thresholds = 4 configurations of one detector, 2 seeds each;
+    # the rerun of (one_class, top_fraction, seed 0) is counted once.
+    assert len(table) == 4
+    assert sorted(table["seeds"]) == ["0,1"] * 4
+    assert (table["auroc.n"] == 2).all()
+    assert table["settings"].str.contains("protocol.kind=").all()
+    assert table["settings"].str.contains("threshold.policy=").all()
+    assert table["settings"].nunique() == 4
+    runs = [r for r in runs_of(client_for(cwd), "cells") if r.info.status == "FINISHED"]
+    assert len(runs) == 9  # the store keeps the superseded run; the report counts it once

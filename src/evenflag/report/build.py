@@ -25,7 +25,9 @@ class ReportRequest:
 def caption(runs: RunTable) -> str:
     seeds = sorted(set(runs.runs["seed"]))
     return (f"Study {', '.join(runs.studies)}: mean over seeds {', '.join(map(str, seeds))} "
-            f"with 95% t-interval half-width; best per dataset in bold.")
+            f"with 95% t-interval half-width over seeds (clipped to the metric's range, then shown as [low, high]); "
+            f"bold where a row's interval is separated from every other row of its dataset in the better direction "
+            f"(arrows: higher or lower is better, or closer to the value shown).")
 
 
 def build_report(request: ReportRequest) -> dict[str, Path]:

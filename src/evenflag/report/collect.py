@@ -1,7 +1,17 @@
-"""Read runs from a tracking store into one table (one row per run). Never re-trains."""
+"""Read runs from a tracking store into one table (one row per run). Never re-trains.
+
+A table cell is one resolved configuration up to the seed: runs share a cell
+only when every config key but the seed is equal, and the data bytes and the
+code version are the same. Keys that differ between cells of one dataset,
+detector and weight are spelt out in the ``settings`` column, so that two
+different configurations never look alike. Two finished runs of one cell with
+one seed are counted once (the newest is kept).
+"""
 
 from __future__ import annotations
 
+import hashlib
+import json
 import os
 from dataclasses import dataclass
 
@@ -10,7 +20,10 @@ import pandas as pd
 
 from evenflag.errors import EvenflagError
 
-CELL = ["dataset", "detector", "weight"]
+CELL = ["dataset", "detector", "weight", "settings"]
+# Params that say where and how to run, not what was computed (and the seed, which a cell spans).
+NOT_CELL = ("seed", "rerun", "threads", "study")
+NOT_CELL_PREFIX = ("tracking.", "tags.", "hydra.")
 
 
 @dataclass
@@ -53,8 +66,16 @@ def load_runs(uri: str, studies: list[str], where: dict[str, str] | None = None)
         page = client.search_runs([e.experiment_id for e in experiments], max_results=5000, page_token=token)
         for run in page:
             params, tags = run.data.params, run.data.tags
+            config = {k: v for k, v in params.items()
+                      if k not in NOT_CELL and not k.startswith(NOT_CELL_PREFIX)}
+            config["data"] = tags.get("evenflag.data_sha256", "")
+            config["code"] = (tags.get("evenflag.git_commit", "")[:12]
+                              + ("+dirty" if tags.get("evenflag.git_dirty") == "true" else ""))
             row = {
                 "run_id": run.info.run_id,
+                "start_time": run.info.start_time or 0,
+                "config": config,
+                "cell_id": hashlib.sha256(json.dumps(config, sort_keys=True).encode()).hexdigest()[:16],
                 "study": next(e.name for e in experiments if e.experiment_id == run.info.experiment_id),
                 "status": run.info.status,
                 "dataset": params.get("dataset.name", tags.get("evenflag.dataset", "?")),
@@ -67,6 +88,8 @@ def load_runs(uri: str, studies: list[str], where: dict[str, str] | None = None)
                 "protocol": params.get("protocol.kind", ""),
                 "threshold": f"{params.get('threshold.policy', '')} {params.get('threshold.fraction', '')}".strip(),
                 "groups": tags.get("evenflag.groups", ""),
+                "natural_base_rates": tags.get("evenflag.natural_base_rates", ""),
+                "reference_group": tags.get("evenflag.reference_group", ""),
             }
             if where and any(params.get(k, tags.get(k)) != v for k, v in where.items()):
                 continue
@@ -78,7 +101,46 @@ def load_runs(uri: str, studies: list[str], where: dict[str, str] | None = None)
     runs = pd.DataFrame(rows)
     if runs.empty:
         raise EvenflagError(f"no runs match in studies {studies}; run a sweep first or loosen the filter")
+    runs = deduplicate(with_settings(runs))
     identity = {"run_id", "study", "status", "dataset", "detector", "weight", "seed", "error", "data_sha256",
-                "git_commit", "protocol", "threshold", "groups"}
+                "git_commit", "protocol", "threshold", "groups", "start_time", "config", "cell_id", "settings",
+                "natural_base_rates", "reference_group"}
     metrics = sorted(c for c in runs.columns if c not in identity)
     return RunTable(runs=runs, metric_columns=metrics, uri=uri, studies=list(studies))
+
+
+def _shown(key: str) -> bool:
+    """Keys already visible in the dataset, detector and weight columns."""
+    return key in ("dataset.name", "detector.weight", "detector.name", "detector.base.name", "mitigation.kind")
+
+
+def with_settings(runs: pd.DataFrame) -> pd.DataFrame:
+    """Add ``settings``: the config keys (and data or code versions) that differ
+    between the cells of one dataset, detector and weight, as ``key=value``."""
+    runs = runs.copy()
+    runs["settings"] = ""
+    weight = runs["weight"].fillna(-1.0)
+    for _, index in runs.groupby([runs["dataset"], runs["detector"], weight]).groups.items():
+        part = runs.loc[index]
+        if part["cell_id"].nunique() < 2:
+            continue
+        configs = list(part["config"])
+        keys = sorted({k for c in configs for k in c})
+        varying = [k for k in keys if not _shown(k) and len({c.get(k, "(unset)") for c in configs}) > 1]
+        runs.loc[index, "settings"] = [
+            "; ".join(f"{k}={_short(c.get(k, '(unset)'))}" for k in varying) for c in configs]
+    return runs
+
+
+def _short(value: str) -> str:
+    value = str(value)
+    return value if len(value) <= 24 else value[:12] + "…"
+
+
+def deduplicate(runs: pd.DataFrame) -> pd.DataFrame:
+    """One run per cell and seed: the newest finished one, else the newest.
+    Runs left out are still in the store (for example a run superseded by a
+    ``rerun=true`` of the same cell)."""
+    order = runs.assign(_finished=runs["status"].eq("FINISHED")).sort_values(["_finished", "start_time"])
+    kept = order.drop_duplicates(["cell_id", "seed"], keep="last").drop(columns="_finished")
+    return kept.sort_index()

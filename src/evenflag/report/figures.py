@@ -9,13 +9,13 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from evenflag.metrics.facts import FOUR_FIFTHS, better_score, fact
 from evenflag.report.collect import RunTable
-from evenflag.report.tables import HIGHER_BETTER
+from evenflag.report.stats import cd_diagram_reason
 
 LINESTYLES = ["-", "--", ":", "-."]
 MARKERS = ["o", "s", "^", "D", "v", "P", "X", "*"]
 HATCHES = ["", "//", "..", "xx", "\\\\", "--", "++", "oo"]
-FOUR_FIFTHS = 0.8
 
 
 def _plt():
@@ -111,6 +111,7 @@ def flag_rate_figure(runs: pd.DataFrame, out: Path):
     from scipy import stats
 
     finished = runs[runs["status"] == "FINISHED"]
+    finished = finished.assign(detector=method_label(finished))  # one bar group per cell, never pooled
     columns = [c for c in finished.columns if c.startswith("flag_rate/") and "." not in c.split("/", 1)[1]]
     if not columns:
         return {}
@@ -142,7 +143,7 @@ def flag_rate_figure(runs: pd.DataFrame, out: Path):
         ax.set_xticks(range(len(detectors)))
         ax.set_xticklabels([_stacked(d) for d in detectors], fontsize=7)
         ax.set_ylabel("flag rate")
-        ax.set_title(dataset, loc="left")
+        ax.set_title(f"{dataset}: mean over seeds; whiskers: 95% t-interval over seeds", loc="left", fontsize=8)
         ax.legend(fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0))
     fig.tight_layout()
     paths = _save(fig, out, "flag_rates")
@@ -240,13 +241,20 @@ def first_finished_scores(runs: RunTable, run_id: str | None = None, tries: int 
     return None, None
 
 
-def method_matrix(table: pd.DataFrame, metric: str) -> pd.DataFrame:
-    """Datasets x methods of a metric's mean; a detector swept over several
-    weights counts as one method per weight."""
+def method_label(table: pd.DataFrame) -> pd.Series:
+    """One label per method: the detector, its weight where a detector has
+    several, and the settings that tell cells apart."""
     weights = table.groupby("detector")["weight"].nunique()
     label = table["detector"] + table.apply(
         lambda r: f" w={r['weight']:g}" if pd.notna(r["weight"]) and weights[r["detector"]] > 1 else "", axis=1)
-    return table.assign(method=label).pivot_table(index="dataset", columns="method", values=f"{metric}.mean")
+    settings = table["settings"] if "settings" in table else pd.Series("", index=table.index)
+    return label + settings.map(lambda s: f" [{s}]" if s else "")
+
+
+def method_matrix(table: pd.DataFrame, metric: str) -> pd.DataFrame:
+    """Datasets x methods of a metric's mean over seeds (one cell each)."""
+    frame = table.assign(method=method_label(table))
+    return frame.pivot(index="dataset", columns="method", values=f"{metric}.mean")
 
 
 def write_figures(runs: RunTable, table: pd.DataFrame, out: Path, run_id: str | None = None,
@@ -258,13 +266,24 @@ def write_figures(runs: RunTable, table: pd.DataFrame, out: Path, run_id: str | 
     scores, title = first_finished_scores(runs, run_id)
     if scores is not None:
         written.update(score_ecdf_figure(scores, out, title))
+    result = friedman_for(table, rank_metric)
+    if result is not None and cd_diagram_reason(result) is None:
+        written.update(critical_difference_figure(result, out, rank_metric))
+    return written
+
+
+def friedman_for(table: pd.DataFrame, metric: str):
+    """Friedman test of the methods over datasets on a metric, or None when
+    there are fewer than 2 complete datasets or 3 methods."""
     from evenflag.report.stats import friedman_nemenyi
 
-    matrix = method_matrix(table, rank_metric)
-    if matrix.shape[0] >= 2 and matrix.shape[1] >= 3:
-        try:
-            result = friedman_nemenyi(matrix, higher_is_better=rank_metric in HIGHER_BETTER)
-            written.update(critical_difference_figure(result, out, rank_metric))
-        except ValueError:
-            pass
-    return written
+    if f"{metric}.mean" not in table:
+        return None
+    matrix = method_matrix(table, metric)
+    if matrix.shape[0] < 2 or matrix.shape[1] < 3:
+        return None
+    try:
+        return friedman_nemenyi(better_score(metric, matrix), higher_is_better=True)
+    except ValueError:
+        return None
+

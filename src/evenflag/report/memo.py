@@ -8,9 +8,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from evenflag.metrics.facts import FOUR_FIFTHS, direction_word
 from evenflag.report.collect import RunTable
-from evenflag.report.stats import friedman_nemenyi, wilcoxon_pair
-from evenflag.report.tables import HIGHER_BETTER
+from evenflag.report.stats import cd_diagram_reason, wilcoxon_datasets
 
 CAUTION = (
     "**Caution.** These numbers describe detectors on particular data sets under one protocol and one "
@@ -27,8 +27,8 @@ def _fmt(value: float) -> str:
 def metadata_lines(runs: RunTable) -> list[str]:
     frame = runs.runs
     lines = [f"- studies: {', '.join(runs.studies)} (tracking store `{runs.uri}`)",
-             f"- runs: {len(frame)} ({int((frame['status'] == 'FINISHED').sum())} finished, "
-             f"{int((frame['status'] == 'FAILED').sum())} failed)",
+             f"- runs counted: {len(frame)} ({int((frame['status'] == 'FINISHED').sum())} finished, "
+             f"{int((frame['status'] == 'FAILED').sum())} failed; one run per configuration and seed)",
              f"- seeds: {', '.join(map(str, sorted(set(frame['seed']))))}",
              f"- protocol: {', '.join(sorted(set(frame['protocol'])))}; threshold: {', '.join(sorted(set(frame['threshold'])))}",
              f"- code version (git commit): {', '.join(sorted(set(c[:12] for c in frame['git_commit'] if c)))}",
@@ -37,77 +37,177 @@ def metadata_lines(runs: RunTable) -> list[str]:
         hashes = sorted(set(rows["data_sha256"]))
         groups = sorted(set(g for g in rows["groups"] if g))
         lines.append(f"  - `{dataset}`: {', '.join(f'`{h}`' for h in hashes)}; groups: {'; '.join(groups)}")
+        lines.extend(f"    - {line}" for line in base_rate_lines(rows))
     return lines
+
+
+def base_rate_lines(rows: pd.DataFrame) -> list[str]:
+    """Anomaly base rate per group in the whole dataset and in the test rows
+    (mean over runs), per protocol: subsampling must not change their ratio."""
+    out = []
+    natural = sorted(set(v for v in rows.get("natural_base_rates", pd.Series(dtype=str)) if v))
+    if natural:
+        out.append(f"base rates in the dataset: {natural[0]}")
+    columns = [c for c in rows.columns if c.startswith("base_rate/") and "." not in c.split("/", 1)[1]]
+    for protocol, part in rows[rows["status"] == "FINISHED"].groupby("protocol"):
+        shown = [f"{c.split('/', 1)[1]}={part[c].mean():.4f}" for c in columns if part[c].notna().any()]
+        if shown:
+            out.append(f"base rates in the test rows ({protocol}): {', '.join(shown)}")
+    return out
 
 
 def reading(runs: RunTable, table: pd.DataFrame) -> list[str]:
     """Plain-language sentences generated from the aggregated numbers."""
+    from evenflag.report.figures import method_label
+
     out = []
+    table = table.assign(method=method_label(table))
     for dataset, cells in table.groupby("dataset"):
         cells = cells[cells["n_finished"] > 0]
-        if cells.empty or "auroc.mean" not in cells:
+        if cells.empty or "auroc.mean" not in cells or cells["auroc.mean"].isna().all():
             continue
         best = cells.loc[cells["auroc.mean"].idxmax()]
-        sentence = (f"On **{dataset}**, {best['detector']}"
-                    + (f" (weight {best['weight']:g})" if pd.notna(best["weight"]) else "")
-                    + f" ranks anomalies best (AUROC {_fmt(best['auroc.mean'])}).")
+        sentence = f"On **{dataset}**, {best['method']} has the highest mean AUROC ({_fmt(best['auroc.mean'])})."
         if "flag_rate_ratio.mean" in cells:
-            below = cells[cells["flag_rate_ratio.mean"] < 0.8]
+            below = cells[cells["flag_rate_ratio.mean"] < FOUR_FIFTHS]
             if len(below):
-                names = ", ".join(sorted(set(below["detector"] + below["weight"].map(
-                    lambda w: f" (weight {w:g})" if pd.notna(w) else ""))))
-                sentence += (f" Mean flag-rate ratios below the four-fifths line (0.8): {names}"
-                             f" (lowest {_fmt(below['flag_rate_ratio.mean'].min())}).")
+                sentence += (f" Mean flag-rate ratios below the four-fifths line ({FOUR_FIFTHS}): "
+                             f"{', '.join(sorted(below['method']))} (lowest {_fmt(below['flag_rate_ratio.mean'].min())}).")
             else:
-                sentence += " Every detector's mean flag-rate ratio is at or above 0.8."
+                sentence += f" Every mean flag-rate ratio is at or above {FOUR_FIFTHS}."
         out.append(sentence)
-    frame = runs.runs
-    detectors = set(frame["detector"])
-    if {"adversarial deep_svdd", "deep_svdd"} <= detectors:
-        for metric, word in (("leakage_auroc", "group leakage of the embedding"), ("flag_rate_ratio", "flag-rate ratio"),
-                             ("auroc", "AUROC")):
-            if metric in frame:
-                test = wilcoxon_pair(frame, "adversarial deep_svdd", "deep_svdd", metric)
-                if test["n"] >= 2 and np.isfinite(test["median_difference"]):
-                    out.append(f"Adversarial against plain Deep SVDD, {word}: median paired difference "
-                               f"{test['median_difference']:+.3f} over {test['n']} dataset x seed pairs "
-                               f"(Wilcoxon signed-rank p = {test['p_value']:.3g}).")
     return out
 
 
-def friedman_lines(table: pd.DataFrame, metrics=("auroc", "flag_rate_ratio")) -> list[str]:
-    from evenflag.report.figures import method_matrix
+def difference_lines(runs: RunTable) -> list[str]:
+    """Per cell: each group's flag rate minus the reference group's, and how
+    many seeds' own 95% intervals exclude 0 (a disparity the run can tell from
+    chance) or are marked degenerate (resting on a group with no flags)."""
+    from evenflag.report.figures import method_label
+
+    frame = runs.runs[runs.runs["status"] == "FINISHED"]
+    columns = [c for c in frame.columns if c.startswith("flag_rate_diff/") and "." not in c.split("/", 1)[1]]
+    if not columns:
+        return []
+    frame = frame.assign(method=method_label(frame))
+    lines = []
+    for (dataset, method), part in frame.groupby(["dataset", "method"]):
+        pieces = []
+        for column in columns:
+            values = part[column]
+            if values.notna().sum() == 0:
+                continue
+            low = part.get(f"{column}.ci_low", pd.Series(np.nan, index=part.index))
+            high = part.get(f"{column}.ci_high", pd.Series(np.nan, index=part.index))
+            with_interval = int((low.notna() & high.notna()).sum())
+            piece = f"{column.split('/', 1)[1]} {values.mean():+.3f}"
+            if with_interval == 0:
+                piece += " (no per-run intervals: the runs used metrics.bootstrap=0)"
+            else:
+                excluded = int(((low > 0) | (high < 0)).sum())
+                marked = int(part.get(f"{column}.ci_degenerate", pd.Series(dtype=float)).fillna(0).sum())
+                piece += f" (intervals excluding 0 in {excluded} of {with_interval} seeds"
+                piece += f"; {marked} marked degenerate)" if marked else ")"
+            pieces.append(piece)
+        if pieces:
+            reference = sorted(set(part.get("reference_group", pd.Series(["?"])).dropna()))
+            lines.append(f"- {dataset} / {method} (against {', '.join(reference) or '?'}): {'; '.join(pieces)}")
+    return lines
+
+
+def variant_pairs(methods: list[str]) -> list[tuple[str, str]]:
+    """(fairness variant, its plain base) pairs among method labels:
+    'adversarial deep_svdd w=1' and 'deep_svdd + group_balanced' against 'deep_svdd'."""
+    import re
+
+    pairs = []
+    for method in methods:
+        settings = re.search(r" \[.*\]$", method)
+        suffix = settings.group(0) if settings else ""
+        core = method[: len(method) - len(suffix)]
+        base = re.sub(r" w=[^ ]+$", "", core.split(" + ")[0])
+        base = base[len("adversarial "):] if base.startswith("adversarial ") else base
+        base += suffix
+        if base != method and base in methods:
+            pairs.append((method, base))
+    return pairs
+
+
+def comparison_lines(table: pd.DataFrame, metrics=("auroc", "flag_rate_ratio", "leakage_auroc")) -> list[str]:
+    """Friedman tests over datasets and Wilcoxon tests of each fairness variant
+    against its base, both on dataset-level means (datasets are the blocks)."""
+    from evenflag.report.figures import friedman_for, method_matrix
 
     lines = []
     for metric in metrics:
-        if f"{metric}.mean" not in table:
+        if f"{metric}.mean" not in table or table[f"{metric}.mean"].isna().all():
             continue
+        result = friedman_for(table, metric)
+        if result is not None:
+            ranks = ", ".join(f"{m} {r:.2f}" for m, r in sorted(zip(result.methods, result.mean_ranks), key=lambda t: t[1]))
+            f_text = f"{result.f_f:.2f}" if np.isfinite(result.f_f) else "undefined (rankings agree perfectly)"
+            line = (f"- {metric.replace('_', ' ')} ({direction_word(metric)}): mean ranks {ranks}; Friedman "
+                    f"chi2_F = {result.chi2_f:.2f} (tie-corrected), p = {result.p_value:.3g} ({result.p_method}) "
+                    f"over {result.n_datasets} datasets; Iman-Davenport F_F = {f_text}; Nemenyi CD = "
+                    f"{result.critical_difference:.2f} at alpha 0.05.")
+            reason = cd_diagram_reason(result)
+            if metric == "auroc":
+                line += (" No critical-difference diagram: " + reason + "." if reason
+                         else " The critical-difference diagram is drawn.")
+            lines.append(line)
         matrix = method_matrix(table, metric)
-        if matrix.shape[0] < 2 or matrix.shape[1] < 3:
-            continue
-        try:
-            result = friedman_nemenyi(matrix, higher_is_better=metric in HIGHER_BETTER)
-        except ValueError:
-            continue
-        ranks = ", ".join(f"{m} {r:.2f}" for m, r in sorted(zip(result.methods, result.mean_ranks), key=lambda t: t[1]))
-        lines.append(f"- {metric.replace('_', ' ')}: mean ranks {ranks}; Friedman chi2_F = {result.chi2_f:.2f}, "
-                     f"Iman-Davenport F_F = {result.f_f:.2f} (p = {result.p_value:.3g}); Nemenyi CD = "
-                     f"{result.critical_difference:.2f} at alpha 0.05 over {result.n_datasets} datasets.")
+        for variant, base in variant_pairs(list(matrix.columns)):
+            test = wilcoxon_datasets(matrix, variant, base)
+            if test["n"] < 2:
+                continue
+            verdict = (f"p = {test['p_value']:.3g}" if np.isfinite(test["p_value"]) else "no test")
+            floor = (f"; with {test['n']} datasets no two-sided p below {test['smallest_p']:.3g} is possible"
+                     if test["smallest_p"] > 0.05 else "")
+            lines.append(f"- {metric.replace('_', ' ')}, {variant} against {base}: median difference of dataset "
+                         f"means {test['median_difference']:+.3f} over {test['n']} datasets (Wilcoxon signed-rank "
+                         f"{verdict}{floor}).")
     return lines
+
+
+def seed_spread_lines(table: pd.DataFrame, metrics=("auroc", "flag_rate_ratio")) -> list[str]:
+    out = []
+    for metric in metrics:
+        if f"{metric}.sd" in table and table[f"{metric}.sd"].notna().any():
+            sd = table[f"{metric}.sd"]
+            out.append(f"- {metric.replace('_', ' ')}: standard deviation over seeds within a cell, median "
+                       f"{sd.median():.3f} (range {sd.min():.3f} to {sd.max():.3f}).")
+    return out
 
 
 def write_memo(runs: RunTable, table: pd.DataFrame, request, written: dict, html: bool = False) -> dict[str, Path]:
     out = Path(request.out)
     figures = [name for name in ("tradeoff.png", "flag_rates.png", "score_ecdf.png", "critical_difference.png")
                if name in written]
-    parts = [f"# Fairness audit memo: {', '.join(runs.studies)}", "", "## What was run", *metadata_lines(runs), "",
-             "## Main table", "", "Mean over seeds with the half-width of a 95% t-interval over seeds; "
-             "best per dataset in bold; `failed`/`missing` mark cells without results.", "",
+    parts = [f"# Flagging review: {', '.join(runs.studies)}", "", "## What was run", *metadata_lines(runs), "",
+             "## Main table", "", "One row per configuration (runs that differ in any setting but the seed never "
+             "share a row; `settings` names what tells rows apart). Mean over seeds with the half-width of a 95% "
+             "t-interval over seeds, clipped to the metric's range (then shown as [low, high]); bold only where "
+             "a row's interval is separated from every other row of its dataset in the better direction; "
+             "`failed`/`missing` mark cells without results.", "",
              (out / "table.md").read_text().split("\n> ")[0], "## Reading", ""]
     parts += [f"- {line}" for line in reading(runs, table)] or ["- (no finished runs)"]
-    stats_lines = friedman_lines(table)
-    if stats_lines:
-        parts += ["", "## Comparison across datasets", "", *stats_lines]
+    differences = difference_lines(runs)
+    if differences:
+        parts += ["", "## Flag rates against the reference group", "",
+                  "Each group's flag rate minus the reference group's (mean over seeds). Every run has its own 95% "
+                  "interval for this difference (bootstrap with the threshold set again in every resample, or "
+                  "Newcombe's score interval where counts are small); the count says in how many seeds it "
+                  "excluded 0. A marked interval rests on a group with no flags and is not a precise value.", "",
+                  *differences]
+    comparisons = comparison_lines(table)
+    parts += ["", "## Comparison across datasets", "",
+              "Methods are compared on their mean over seeds in each dataset: datasets are the independent "
+              "units, seeds are not.", ""]
+    parts += comparisons or ["- No test: a comparison needs at least 2 datasets with results for every method "
+                             "compared (3 methods for the Friedman test)."]
+    spread = seed_spread_lines(table)
+    if spread:
+        parts += ["", "## Spread over seeds", "", *spread]
     if figures:
         parts += ["", "## Figures", ""]
         parts += [f"![{name[:-4].replace('_', ' ')}]({name})" for name in figures]

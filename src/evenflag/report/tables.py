@@ -1,8 +1,16 @@
 """Summary tables: runs aggregated over seeds, as Markdown, LaTeX and CSV.
 
-Each cell is the mean over seeds with a 95% confidence interval from the t
-distribution over seeds (mean +/- t * sd / sqrt(n)); ``n`` counts finished
-seeds. Cells whose runs failed are kept and say so.
+A row is one cell: one resolved configuration up to the seed (see
+collect.py); ``settings`` names the config keys that tell cells of the same
+dataset, detector and weight apart. Each entry is the mean over finished seeds
+with the half-width of a 95% confidence interval from the t distribution over
+seeds (mean +/- t * sd / sqrt(n)); ``n`` counts finished seeds. Intervals that
+would leave the metric's range are clipped to it and then shown as
+``[low, high]``; a cell whose seeds all gave the same value says so instead of
+showing a zero-width interval. A value is bold only when its interval does not
+overlap the interval of any other row of the same dataset in the direction
+that is better (named in the header). Cells whose runs failed are kept and say
+so.
 """
 
 from __future__ import annotations
@@ -10,32 +18,28 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from evenflag.metrics.facts import better_score, fact, header
+
 DEFAULT_METRICS = ["auroc", "average_precision", "flag_rate_ratio", "score_distance", "false_flag_gap",
                    "leakage_auroc"]
-HEADERS = {
-    "auroc": "AUROC", "average_precision": "avg. precision", "flag_rate_ratio": "flag-rate ratio",
-    "score_distance": "score distance", "false_flag_gap": "false-flag gap", "leakage_auroc": "leakage AUROC",
-    "flag_rate_gap": "flag-rate gap", "hit_rate_gap": "hit-rate gap", "score_ks": "score KS",
-    "group_auroc_gap": "group AUROC gap", "flag_f1": "flag F1",
-}
-# Which direction is better; leakage is best at 0.5 (no group information).
-HIGHER_BETTER = {"auroc", "average_precision", "flag_rate_ratio", "flag_f1", "flag_precision", "flag_recall",
-                 "precision_at_k", "four_fifths_pass"}
-CLOSER_TO_HALF = {"leakage_auroc"}
+ROW_KEYS = ["dataset", "detector", "weight", "settings"]
 
 
 def aggregate(runs: pd.DataFrame, metrics: list[str]) -> pd.DataFrame:
-    """One row per (dataset, detector, weight): mean, sd, ci (half-width), n per metric,
-    plus the number of finished and failed runs."""
+    """One row per cell: mean, sd, ci (half-width), low, high (clipped), n per
+    metric, plus the number of finished and failed runs."""
     from scipy import stats
 
-    keys = ["dataset", "detector", "weight"]
     frame = runs.copy()
-    frame["weight"] = frame["weight"].fillna(-1.0)  # keep cells without a weight in groupby
+    if "settings" not in frame:
+        frame["settings"] = ""
+    if "cell_id" not in frame:
+        frame["cell_id"] = ["|".join(map(str, key)) for key in frame[ROW_KEYS].itertuples(index=False)]
     rows = []
-    for key, cell in frame.groupby(keys, sort=True, dropna=False):
+    for _, cell in frame.groupby("cell_id", sort=False):
         finished = cell[cell["status"] == "FINISHED"]
-        row = dict(zip(keys, key))
+        first = cell.iloc[0]
+        row = {key: first[key] for key in ROW_KEYS}
         row["n_finished"] = len(finished)
         row["n_failed"] = int((cell["status"] == "FAILED").sum())
         row["seeds"] = ",".join(str(s) for s in sorted(finished["seed"]))
@@ -47,69 +51,104 @@ def aggregate(runs: pd.DataFrame, metrics: list[str]) -> pd.DataFrame:
             mean = values.mean() if n else np.nan
             sd = values.std(ddof=1) if n > 1 else np.nan
             half = stats.t.ppf(0.975, n - 1) * sd / np.sqrt(n) if n > 1 else np.nan
-            row.update({f"{metric}.mean": mean, f"{metric}.sd": sd, f"{metric}.ci": half, f"{metric}.n": n})
+            found = fact(metric)
+            low_limit, high_limit = (found.low, found.high) if found else (-np.inf, np.inf)
+            row.update({f"{metric}.mean": mean, f"{metric}.sd": sd, f"{metric}.ci": half, f"{metric}.n": n,
+                        f"{metric}.low": max(mean - half, low_limit) if np.isfinite(half) else np.nan,
+                        f"{metric}.high": min(mean + half, high_limit) if np.isfinite(half) else np.nan})
         rows.append(row)
     table = pd.DataFrame(rows)
-    table["weight"] = table["weight"].replace(-1.0, np.nan)
-    return table
+    order = table["weight"].fillna(-1.0)
+    table = table.assign(_w=order).sort_values(["dataset", "detector", "_w", "settings"]).drop(columns="_w")
+    return table.reset_index(drop=True)
 
 
-def _best(table: pd.DataFrame, metric: str) -> pd.Series:
-    """True where the cell is the best of its dataset for this metric."""
-    values = table[f"{metric}.mean"]
-    if metric in CLOSER_TO_HALF:
-        score = -(values - 0.5).abs()
-    elif metric in HIGHER_BETTER:
-        score = values
-    else:
-        score = -values
-    best = score.groupby(table["dataset"]).transform("max")
-    return (score == best) & score.notna()
+def separated_best(table: pd.DataFrame, metric: str) -> pd.Series:
+    """True where a row is the best of its dataset and its interval lies wholly
+    on the better side of every other row's interval (no overlap)."""
+    out = pd.Series(False, index=table.index)
+    for _, part in table.groupby("dataset"):
+        part = part[part[f"{metric}.mean"].notna()]
+        if len(part) < 2:
+            continue
+        goodness = better_score(metric, part[f"{metric}.mean"])
+        best = goodness.idxmax()
+        low = part[f"{metric}.low"].fillna(part[f"{metric}.mean"])
+        high = part[f"{metric}.high"].fillna(part[f"{metric}.mean"])
+        if part.loc[best, "n_finished"] < 2:
+            continue  # one seed: no interval to separate
+        others = part.index != best
+        found = fact(metric)
+        if found is not None and found.better == "lower":
+            separated = (high[best] < low[others]).all()
+        elif found is not None and found.better == "parity":
+            parity = found.parity if found.parity is not None else 0.0
+            distance_high = np.maximum(np.abs(low - parity), np.abs(high - parity))
+            distance_low = np.where((low <= parity) & (parity <= high), 0.0, np.minimum(np.abs(low - parity), np.abs(high - parity)))
+            separated = (distance_high[best] < np.asarray(distance_low)[others]).all()
+        else:
+            separated = (low[best] > high[others]).all()
+        out.loc[best] = bool(separated)
+    return out
 
 
-def _cell(row, metric) -> str:
+def cell_text(row, metric) -> str:
     mean, half = row[f"{metric}.mean"], row[f"{metric}.ci"]
     if row["n_finished"] == 0:
         return "failed" if row["n_failed"] else "missing"
     if not np.isfinite(mean):
         return "n/a"
-    return f"{mean:.3f} ± {half:.3f}" if np.isfinite(half) else f"{mean:.3f}"
+    if row[f"{metric}.n"] > 1 and row[f"{metric}.sd"] == 0:
+        return f"{mean:.3f} (all seeds equal)"
+    if not np.isfinite(half):
+        return f"{mean:.3f}"
+    low, high = row[f"{metric}.low"], row[f"{metric}.high"]
+    if low > mean - half + 1e-12 or high < mean + half - 1e-12:
+        return f"{mean:.3f} [{low:.3f}, {high:.3f}]"
+    return f"{mean:.3f} ± {half:.3f}"
 
 
 def _columns(table, metrics):
     show_weight = table["weight"].notna().any()
-    return show_weight, [m for m in metrics if f"{m}.mean" in table and table[f"{m}.n"].sum() > 0]
+    show_settings = table["settings"].astype(bool).any()
+    return show_weight, show_settings, [m for m in metrics if f"{m}.mean" in table and table[f"{m}.n"].sum() > 0]
 
 
 def to_markdown(table: pd.DataFrame, metrics: list[str]) -> str:
-    show_weight, metrics = _columns(table, metrics)
-    best = {m: _best(table, m) for m in metrics}
-    header = ["dataset", "detector"] + (["weight"] if show_weight else []) + ["seeds (failed)"] + [HEADERS.get(m, m) for m in metrics]
-    lines = ["| " + " | ".join(header) + " |", "|" + "|".join(["---"] * 2 + (["---:"] if show_weight else []) + ["---:"] * (1 + len(metrics))) + "|"]
+    show_weight, show_settings, metrics = _columns(table, metrics)
+    best = {m: separated_best(table, m) for m in metrics}
+    names = ["dataset", "detector"] + (["weight"] if show_weight else []) + (["settings"] if show_settings else [])
+    head = names + ["seeds (failed)"] + [header(m) for m in metrics]
+    align = ["---"] * 2 + (["---:"] if show_weight else []) + (["---"] if show_settings else []) + ["---:"] * (1 + len(metrics))
+    lines = ["| " + " | ".join(head) + " |", "|" + "|".join(align) + "|"]
     for i, row in table.iterrows():
         cells = [row["dataset"], row["detector"]]
         if show_weight:
             cells.append("" if pd.isna(row["weight"]) else f"{row['weight']:g}")
+        if show_settings:
+            cells.append(row["settings"])
         cells.append(f"{row['n_finished']}" + (f" ({row['n_failed']})" if row["n_failed"] else ""))
         for m in metrics:
-            text = _cell(row, m)
-            cells.append(f"**{text}**" if best[m].loc[i] and table["dataset"].eq(row["dataset"]).sum() > 1 else text)
+            text = cell_text(row, m)
+            cells.append(f"**{text}**" if best[m].loc[i] else text)
         lines.append("| " + " | ".join(cells) + " |")
     return "\n".join(lines) + "\n"
 
 
 def _tex(text: str) -> str:
     return (str(text).replace("\\", r"\textbackslash{}").replace("_", r"\_").replace("&", r"\&")
-            .replace("%", r"\%").replace("#", r"\#").replace("±", r"$\pm$"))
+            .replace("%", r"\%").replace("#", r"\#").replace("±", r"$\pm$")
+            .replace("↑", r"$\uparrow$").replace("↓", r"$\downarrow$").replace("→", r"$\to$").replace("…", r"\ldots{}"))
 
 
 def to_latex(table: pd.DataFrame, metrics: list[str], caption: str, label: str = "tab:evenflag") -> str:
-    show_weight, metrics = _columns(table, metrics)
-    best = {m: _best(table, m) for m in metrics}
-    header = ["dataset", "detector"] + (["weight"] if show_weight else []) + ["seeds"] + [HEADERS.get(m, m) for m in metrics]
-    spec = "ll" + ("r" if show_weight else "") + "r" + "r" * len(metrics)
+    show_weight, show_settings, metrics = _columns(table, metrics)
+    best = {m: separated_best(table, m) for m in metrics}
+    head = (["dataset", "detector"] + (["weight"] if show_weight else []) + (["settings"] if show_settings else [])
+            + ["seeds"] + [header(m) for m in metrics])
+    spec = "ll" + ("r" if show_weight else "") + ("l" if show_settings else "") + "r" + "r" * len(metrics)
     out = [r"\begin{table}[t]", r"\centering", f"\\caption{{{_tex(caption)}}}", f"\\label{{{label}}}",
-           f"\\begin{{tabular}}{{{spec}}}", r"\toprule", " & ".join(_tex(h) for h in header) + r" \\", r"\midrule"]
+           f"\\begin{{tabular}}{{{spec}}}", r"\toprule", " & ".join(_tex(h) for h in head) + r" \\", r"\midrule"]
     previous = None
     for i, row in table.iterrows():
         if previous is not None and row["dataset"] != previous:
@@ -118,10 +157,12 @@ def to_latex(table: pd.DataFrame, metrics: list[str], caption: str, label: str =
         cells = [_tex(row["dataset"]), _tex(row["detector"])]
         if show_weight:
             cells.append("" if pd.isna(row["weight"]) else f"{row['weight']:g}")
+        if show_settings:
+            cells.append(_tex(row["settings"]))
         cells.append(f"{row['n_finished']}" + (f" ({row['n_failed']} failed)" if row["n_failed"] else ""))
         for m in metrics:
-            text = _tex(_cell(row, m))
-            cells.append(f"\\textbf{{{text}}}" if best[m].loc[i] and table["dataset"].eq(row["dataset"]).sum() > 1 else text)
+            text = _tex(cell_text(row, m))
+            cells.append(f"\\textbf{{{text}}}" if best[m].loc[i] else text)
         out.append(" & ".join(cells) + r" \\")
     out += [r"\bottomrule", r"\end{tabular}", r"\end{table}"]
     return "\n".join(out) + "\n"
