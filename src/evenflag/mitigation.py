@@ -7,12 +7,21 @@
   inside each group, so every group is flagged at the same rate. Group-
   specific thresholds treat people differently by group, which is unlawful
   in some jurisdictions (disparate treatment): get legal review before use.
+
+With ``top_fraction`` and ``true_rate`` the overall number of flags is fixed
+first (round(fraction x rows), or the number of anomalies) and shared out
+between groups by largest remainder in proportion to group size, so the total
+is kept and every group's share is within one flag of its exact quota. A group
+smaller than 1 / fraction rows has a quota below one flag: it gets one only if
+its remainder is among the largest, so such groups are flagged at 0 or at a
+rate well above ``fraction``; their flag rates say little.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from evenflag.apportion import largest_remainder
 from evenflag.errors import ConfigError
 from evenflag.thresholds import ThresholdSpec, _top_k, flag_scores
 
@@ -48,26 +57,28 @@ def flag_per_group(spec: ThresholdSpec, test_scores, test_group, train_scores=No
                    test_labels=None) -> np.ndarray:
     """The threshold policy applied inside each group value.
 
-    For ``true_rate`` the overall number of flags (the number of true
-    anomalies) is shared out in proportion to group size.
-
     Examples
     --------
     >>> flags = flag_per_group(ThresholdSpec("top_fraction", 0.5), np.array([1., 2, 3, 4, 10, 20]),
     ...                        np.array(["a", "a", "b", "b", "b", "b"]))
     >>> flags.tolist()
     [False, True, False, False, True, True]
+    >>> group = np.array(["small"] * 10 + ["large"] * 190)  # 6% of 200 = 12 flags: quotas 0.6 and 11.4
+    >>> flags = flag_per_group(ThresholdSpec("top_fraction", 0.06), np.arange(200.0), group)
+    >>> int(flags[:10].sum()), int(flags[10:].sum())
+    (1, 11)
     """
     test_scores = np.asarray(test_scores, dtype=np.float64)
     test_group = np.asarray(test_group)
     flags = np.zeros(len(test_scores), dtype=bool)
-    total = int(np.sum(test_labels)) if spec.policy == "true_rate" else 0
-    for value in np.unique(test_group):
-        members = test_group == value
-        if spec.policy == "true_rate":
-            flags[members] = _top_k(test_scores[members], int(round(total * members.mean())))
-        elif spec.policy == "train_quantile":
+    values, sizes = np.unique(test_group, return_counts=True)
+    if spec.policy == "train_quantile":
+        for value in values:
+            members = test_group == value
             flags[members] = flag_scores(spec, test_scores[members], train_scores[np.asarray(train_group) == value])
-        else:
-            flags[members] = flag_scores(spec, test_scores[members])
+        return flags
+    total = int(np.sum(test_labels)) if spec.policy == "true_rate" else int(round(spec.fraction * len(test_scores)))
+    for value, quota in zip(values, largest_remainder(sizes, total)):
+        members = test_group == value
+        flags[members] = _top_k(test_scores[members], int(quota))
     return flags

@@ -2,7 +2,11 @@
 
 * ``top_fraction``: flag the top ``fraction`` of test scores (a review budget);
 * ``train_quantile``: flag test scores above the ``1 - fraction`` quantile of
-  the training scores (what a deployment without labels does);
+  the scores of held-out training rows (what a deployment without labels
+  does). The runner holds out ``calibration_fraction`` of the training rows,
+  the same share of every group, and fits the detector on the rest: scores of
+  rows a flexible detector was fitted on are too low (it flagged 9.8% of new
+  normal rows for a nominal 5% when cut on in-sample scores).
 * ``true_rate``: flag as many test rows as there are true anomalies (the
   oracle setting common in papers).
 
@@ -27,6 +31,17 @@ class ThresholdSpec:
 
     policy: str = "top_fraction"
     fraction: float = 0.05
+    calibration_fraction: float = 0.2   # train_quantile: share of training rows held out to set the cut
+
+
+def check_spec(spec: ThresholdSpec) -> None:
+    """Refuse an unknown policy or a fraction outside (0, 1), before any work."""
+    if spec.policy not in POLICIES:
+        raise ConfigError(f"threshold.policy '{spec.policy}' is unknown; use one of {list(POLICIES)}")
+    if spec.policy != "true_rate" and not 0.0 < spec.fraction < 1.0:
+        raise ConfigError(f"threshold.fraction must be between 0 and 1 (exclusive), got {spec.fraction}")
+    if not 0.0 < spec.calibration_fraction < 1.0:
+        raise ConfigError(f"threshold.calibration_fraction must be between 0 and 1 (exclusive), got {spec.calibration_fraction}")
 
 
 def _top_k(scores: np.ndarray, k: int) -> np.ndarray:
@@ -48,15 +63,12 @@ def flag_scores(spec: ThresholdSpec, test_scores, train_scores=None, test_labels
     [False, True]
     """
     scores = np.asarray(test_scores, dtype=np.float64)
-    if spec.policy not in POLICIES:
-        raise ConfigError(f"threshold.policy '{spec.policy}' is unknown; use one of {list(POLICIES)}")
-    if spec.policy != "true_rate" and not 0.0 < spec.fraction < 1.0:
-        raise ConfigError(f"threshold.fraction must be between 0 and 1 (exclusive), got {spec.fraction}")
+    check_spec(spec)
     if spec.policy == "top_fraction":
         return _top_k(scores, int(round(spec.fraction * len(scores))))
     if spec.policy == "train_quantile":
         if train_scores is None:
-            raise ConfigError("threshold policy train_quantile needs the training scores")
+            raise ConfigError("threshold policy train_quantile needs the scores of held-out training rows")
         cut = np.quantile(np.asarray(train_scores, dtype=np.float64), 1.0 - spec.fraction)
         return scores > cut
     if test_labels is None:

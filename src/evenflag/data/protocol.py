@@ -13,6 +13,7 @@ from typing import Optional
 
 import numpy as np
 
+from evenflag.apportion import largest_remainder
 from evenflag.data.dataset import Dataset
 from evenflag.errors import ProtocolError
 
@@ -37,26 +38,13 @@ class Split:
     test: np.ndarray
 
 
-def _allocate(sizes: np.ndarray, total: int) -> np.ndarray:
-    """Largest-remainder allocation of ``total`` in proportion to ``sizes``,
-    so every stratum gets its share to within one row."""
-    if total <= 0 or sizes.sum() == 0:
-        return np.zeros_like(sizes)
-    exact = sizes * (total / sizes.sum())
-    counts = np.floor(exact).astype(int)
-    remainder = total - counts.sum()
-    order = np.argsort(-(exact - counts), kind="stable")
-    counts[order[:remainder]] += 1
-    return np.minimum(counts, sizes)
-
-
 def _subsample_by_group(rows: np.ndarray, group_codes: np.ndarray, keep: int, rng) -> np.ndarray:
     if keep >= len(rows):
         return rows
     codes = group_codes[rows]
     values = np.unique(codes)
     sizes = np.array([(codes == v).sum() for v in values])
-    quota = _allocate(sizes, keep)
+    quota = largest_remainder(sizes, keep)
     chosen = [rng.permutation(rows[codes == v])[:q] for v, q in zip(values, quota)]
     return np.concatenate(chosen)
 
@@ -103,18 +91,86 @@ def make_split(dataset: Dataset, spec: ProtocolSpec, seed: int) -> Split:
 
 
 def _set_anomaly_rate(rows, label, group_codes, rate, rng, part):
+    """Rows with an overall anomaly rate of ``rate`` whose groups keep the
+    ratios between their natural anomaly rates (each group's rate is scaled by
+    the same factor c). Below the natural rate anomalies are subsampled; above
+    it normal rows are. Each group's count is rounded to the nearest row, so
+    the ratios hold to within one row per group."""
     if rate is None:
         return rows
-    normal = rows[label[rows] == 0]
-    anomalous = rows[label[rows] == 1]
-    wanted = _target_anomalies(len(normal), rate)
-    if wanted <= len(anomalous):
-        anomalous = _subsample_by_group(anomalous, group_codes, wanted, rng)
-    elif rate > 0:
-        # Not enough anomalies: keep them all and thin the normal rows instead.
-        keep_normal = int(round(len(anomalous) * (1.0 - rate) / rate))
-        normal = _subsample_by_group(normal, group_codes, keep_normal, rng)
-    return np.concatenate([normal, anomalous])
+    codes = group_codes[rows]
+    is_anomaly = label[rows] == 1
+    values = np.unique(codes)
+    anomalies = np.array([(is_anomaly & (codes == v)).sum() for v in values], dtype=np.float64)
+    normals = np.array([(~is_anomaly & (codes == v)).sum() for v in values], dtype=np.float64)
+    natural = anomalies / np.maximum(anomalies + normals, 1)
+    overall = anomalies.sum() / max(anomalies.sum() + normals.sum(), 1)
+    if anomalies.sum() == 0 or rate == overall:
+        return rows
+
+    def counts_at(c):
+        """(anomalies, normals) per group when every group's rate is c times its natural rate."""
+        scaled = np.minimum(c * natural, 1 - 1e-12)
+        if c <= 1:  # keep the normal rows, keep fewer anomalies
+            kept = np.where(normals > 0, normals * scaled / (1 - scaled), c * anomalies)
+            return np.minimum(kept, anomalies), normals
+        kept = np.where(anomalies > 0, anomalies * (1 - scaled) / np.maximum(scaled, 1e-300), normals)
+        return anomalies, np.minimum(kept, normals)
+
+    def overall_at(c):
+        a, n = counts_at(c)
+        return a.sum() / (a.sum() + n.sum())
+
+    low, high = (0.0, 1.0) if rate < overall else (1.0, 1.0 / natural.max())
+    if rate > overall and overall_at(high * (1 - 1e-9)) < rate:
+        raise ProtocolError(
+            f"protocol.{part}_anomaly_rate={rate} cannot be reached while keeping the groups' anomaly rates in "
+            f"proportion (at most {overall_at(high * (1 - 1e-9)):.3f} here); lower the rate or set it to null")
+    for _ in range(100):  # bisection on the common factor c; overall_at is increasing in c
+        middle = (low + high) / 2
+        low, high = (middle, high) if overall_at(middle) < rate else (low, middle)
+    keep_a, keep_n = (np.rint(x).astype(int) for x in counts_at((low + high) / 2))
+    chosen = []
+    for v, n_a, n_n in zip(values, keep_a, keep_n):
+        chosen.append(rng.permutation(rows[is_anomaly & (codes == v)])[:n_a])
+        chosen.append(rng.permutation(rows[~is_anomaly & (codes == v)])[:n_n])
+    return np.concatenate(chosen)
+
+
+def base_rates(label: np.ndarray, group: np.ndarray) -> dict[str, float]:
+    """Share of anomalies in each group value.
+
+    Examples
+    --------
+    >>> base_rates(np.array([1, 0, 0, 0]), np.array(["a", "a", "b", "b"]))
+    {'a': 0.5, 'b': 0.0}
+    """
+    group = np.asarray(group).astype(str)
+    return {str(v): float(label[group == v].mean()) for v in np.unique(group)}
+
+
+def hold_out(group: np.ndarray, fraction: float, seed: int) -> np.ndarray:
+    """Boolean mask of about ``fraction`` of the rows, the same share of every
+    group value (rounded per group, at least one row and one left over where a
+    group has two or more rows). Used to set a threshold on rows the detector
+    was not fitted on.
+
+    Examples
+    --------
+    >>> mask = hold_out(np.array(["a"] * 10 + ["b"] * 20), 0.2, seed=0)
+    >>> int(mask[:10].sum()), int(mask[10:].sum())
+    (2, 4)
+    """
+    rng = np.random.default_rng(seed)
+    group = np.asarray(group).astype(str)
+    mask = np.zeros(len(group), dtype=bool)
+    for value in np.unique(group):
+        members = np.flatnonzero(group == value)
+        take = int(round(len(members) * fraction))
+        if len(members) >= 2:
+            take = min(max(take, 1), len(members) - 1)
+        mask[rng.permutation(members)[:take]] = True
+    return mask
 
 
 def _validate(spec: ProtocolSpec) -> None:

@@ -18,12 +18,13 @@ from omegaconf import DictConfig, OmegaConf
 from evenflag import mitigation
 from evenflag.data.dataset import Dataset
 from evenflag.data.preprocessing import PreparedData, prepare
-from evenflag.data.protocol import ProtocolSpec, make_split
+from evenflag.data.protocol import ProtocolSpec, base_rates, hold_out, make_split
 from evenflag.data.registry import load_dataset, to_spec
 from evenflag.detectors.base import build_detector
 from evenflag.errors import DetectorError
-from evenflag.metrics.suites import MetricsSpec, evaluate
-from evenflag.thresholds import ThresholdSpec, flag_scores
+from evenflag.metrics.inputs import FlagRule
+from evenflag.metrics.suites import MetricsSpec, check_spec, evaluate
+from evenflag.thresholds import ThresholdSpec, check_spec as check_threshold, flag_scores
 
 _PREPARED: dict[tuple, PreparedData] = {}
 _MAX_PREPARED = 16
@@ -79,6 +80,17 @@ def prepared_data(dataset: Dataset, dataset_key: str, protocol: ProtocolSpec, se
     return _PREPARED[key]
 
 
+def flag_rule(threshold: ThresholdSpec, mitigation_kind: str) -> FlagRule | None:
+    """How the flags follow from the test scores, for resampling: a rank rule for
+    ``top_fraction`` and ``true_rate``; none for a cut learned on other rows or
+    per-group thresholds (flags then stay fixed and closed-form intervals apply)."""
+    if mitigation_kind == "group_thresholds" or threshold.policy == "train_quantile":
+        return None
+    if threshold.policy == "top_fraction":
+        return FlagRule("top_fraction", threshold.fraction)
+    return FlagRule("top_anomalies")
+
+
 def execute(cfg) -> RunOutput:
     """Run one configuration. ``cfg`` is a composed run config (DictConfig or dict)."""
     timings = {}
@@ -90,6 +102,8 @@ def execute(cfg) -> RunOutput:
     metrics_spec = _as_obj(cfg["metrics"], MetricsSpec)
     mitigation_kind = (cfg.get("mitigation") or {}).get("kind", "none")
     mitigation.check_kind(mitigation_kind)
+    check_threshold(threshold)
+    check_spec(metrics_spec)
     seed = int(cfg["seed"])
     detector_cfg = cfg["detector"]
     if isinstance(detector_cfg, DictConfig):
@@ -100,6 +114,12 @@ def execute(cfg) -> RunOutput:
     timings["data"] = time.perf_counter() - started
 
     X_train, group_train = data.X_train, data.group_train
+    X_calibration = group_calibration = None
+    if threshold.policy == "train_quantile":
+        # The cut is set on training rows the detector never saw (same share of every group).
+        held = hold_out(group_train, threshold.calibration_fraction, seed)
+        X_calibration, group_calibration = X_train[held], group_train[held]
+        X_train, group_train = X_train[~held], group_train[~held]
     if mitigation_kind == "group_balanced":
         rows = mitigation.balanced_rows(group_train, seed)
         X_train, group_train = X_train[rows], group_train[rows]
@@ -111,8 +131,8 @@ def execute(cfg) -> RunOutput:
     timings["fit"] = time.perf_counter() - tick
     tick = time.perf_counter()
     test_scores = np.asarray(detector.anomaly_score(data.X_test), dtype=np.float64)
-    needs_train = threshold.policy == "train_quantile"
-    train_scores = np.asarray(detector.anomaly_score(X_train), dtype=np.float64) if needs_train else None
+    calibration_scores = (np.asarray(detector.anomaly_score(X_calibration), dtype=np.float64)
+                          if X_calibration is not None else None)
     timings["score"] = time.perf_counter() - tick
     if test_scores.shape != (len(data.X_test),) or not np.isfinite(test_scores).all():
         raise DetectorError(
@@ -121,15 +141,19 @@ def execute(cfg) -> RunOutput:
 
     tick = time.perf_counter()
     if mitigation_kind == "group_thresholds":
-        flags = mitigation.flag_per_group(threshold, test_scores, data.group_test, train_scores, group_train,
-                                          data.label_test)
+        flags = mitigation.flag_per_group(threshold, test_scores, data.group_test, calibration_scores,
+                                          group_calibration, data.label_test)
     else:
-        flags = flag_scores(threshold, test_scores, train_scores, data.label_test)
+        flags = flag_scores(threshold, test_scores, calibration_scores, data.label_test)
     embedding = None
     if "leakage" in metrics_spec.families and hasattr(detector, "embed"):
         embedding = np.asarray(detector.embed(data.X_test))
     result = evaluate(metrics_spec.families, data.label_test, test_scores, flags, data.group_test,
-                      embedding=embedding, n_bootstrap=metrics_spec.bootstrap, seed=seed, level=metrics_spec.level)
+                      embedding=embedding, n_bootstrap=metrics_spec.bootstrap, seed=seed, level=metrics_spec.level,
+                      resample=metrics_spec.resample, reference_group=metrics_spec.reference_group,
+                      rule=flag_rule(threshold, mitigation_kind))
+    result.notes["natural_base_rates"] = ", ".join(
+        f"{g}={r:.4f}" for g, r in base_rates(dataset.label, dataset.group.to_numpy()).items())
     timings["metrics"] = time.perf_counter() - tick
 
     scores = pd.DataFrame({
