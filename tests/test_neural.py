@@ -128,6 +128,18 @@ def test_multi_valued_and_intersectional_groups(mode):
     assert 0 <= row["adversary_accuracy"] <= 1 and np.isfinite(row["adversary_loss"])
 
 
+@pytest.mark.parametrize("mode", ["alternating", "gradient_reversal"])
+def test_adversary_trains_when_the_last_batch_has_one_row(mode):
+    # 257 rows at batch size 128: the shuffled batches would end with a single row,
+    # which batch statistics cannot normalise (torch.nn.BatchNorm1d refuses it).
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(257, 5)).astype(np.float32)
+    group = rng.choice(["a", "b"], 257)
+    det = AdversarialDetector(base={"name": "deep_svdd", "hidden": [8], "rep_dim": 4, "epochs": 2, "batch_size": 128},
+                              weight=1.0, mode=mode, seed=0).fit(X, group)
+    assert np.isfinite(det.anomaly_score(X)).all()
+
+
 def test_warmup_and_ramp_of_the_weight():
     data = _synthetic(1.0, rows=1000)
     det = AdversarialDetector(base={"name": "deep_svdd", **{**SMALL, "epochs": 6}}, weight=2.0, warmup_epochs=2,

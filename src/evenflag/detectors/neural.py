@@ -152,9 +152,14 @@ class _NeuralDetector:
         return torch.from_numpy(X).to(self.device_ if hasattr(self, "device_") else _device(self.device))
 
     def _batches(self, n: int, generator):
+        """Shuffled index batches. A last batch of one row joins the batch before
+        it: batch statistics (the adversary's BatchNorm) need two rows."""
         torch = _torch()
         order = torch.randperm(n, generator=generator)
-        return [order[i:i + self.batch_size] for i in range(0, n, self.batch_size)]
+        batches = [order[i:i + self.batch_size] for i in range(0, n, self.batch_size)]
+        if len(batches) > 1 and len(batches[-1]) == 1:
+            batches[-2:] = [torch.cat(batches[-2:])]
+        return batches
 
     def _train(self, X, group, adversary: "AdversarySpec | None"):
         torch = _torch()
