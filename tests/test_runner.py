@@ -208,6 +208,21 @@ def test_neural_detectors_and_mitigations_run_in_a_sweep(tmp_path):
         assert abs(rows["flag"].sum() - 0.05 * len(rows)) <= 1
 
 
+def test_a_setting_shared_by_swept_detectors(tmp_path):
+    # Both detectors have `epochs`; the default detector (isolation forest) does not.
+    result = evenflag(tmp_path, "run", "-m", *SMALL, "study=shared", "detector=deep_svdd,autoencoder",
+                      "detector.epochs=1", "detector.hidden=[8]")
+    assert result.returncode == 0, result.stderr + result.stdout
+    runs = runs_of(client_for(tmp_path), "shared")
+    assert sorted(r.data.params["detector.name"] for r in runs) == ["autoencoder", "deep_svdd"]
+    assert {r.data.params["detector.epochs"] for r in runs} == {"1"}
+    # A detector without the setting is still refused before any job starts.
+    refused = evenflag(tmp_path, "run", "-m", *SMALL, "study=shared", "detector=deep_svdd,isolation_forest",
+                       "detector.epochs=1")
+    assert refused.returncode == 2 and "unknown setting 'detector.epochs'" in refused.stderr
+    assert len(runs_of(client_for(tmp_path), "shared")) == 2
+
+
 @pytest.mark.parametrize("experiment, jobs", [("demo", 12), ("reference", 200), ("weight_tradeoff", 54)])
 def test_study_configs_compose_and_count(experiment, jobs):
     from evenflag.runner.app import _compose, _count_jobs

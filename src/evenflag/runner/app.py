@@ -70,7 +70,7 @@ def launch(argv: list[str]) -> int:
         os.environ[ledger.START_ENV] = str(time.time())
         # Jobs write the store the launcher prepared, even in other processes.
         os.environ["EVENFLAG_LAUNCH_DIR"] = str(Path.cwd())
-        code = _call_hydra(argv)
+        code = _call_hydra(_force_keys_of_swept_groups(argv, overrides, extra_dirs) if multirun else argv)
         entries = ledger.read(path)
     finally:
         path.unlink(missing_ok=True)
@@ -120,6 +120,23 @@ def _split_args(argv: list[str]) -> tuple[list[str], list[str]]:
         elif not arg.startswith("-"):
             overrides.append(arg)
     return overrides, extra_dirs
+
+
+def _force_keys_of_swept_groups(argv: list[str], overrides: list[str], extra_dirs: list[str]) -> list[str]:
+    """``detector=deep_svdd,autoencoder detector.epochs=2``: Hydra's sweeper first
+    composes the non-sweep overrides onto the default detector, which has no
+    ``epochs``, and stops. Every combination was composed and checked above
+    with the override as written, so it is passed on as ``++detector.epochs=2``
+    (set whether or not the default has the key)."""
+    swept = {item.get_key_element().lstrip("+~") for item in _parse(overrides)
+             if item.is_sweep_override() and _is_group(item.get_key_element(), extra_dirs)}
+    out = []
+    for arg in argv:
+        key = arg.split("=", 1)[0]
+        if "=" in arg and not key.startswith(("+", "~")) and key.split(".", 1)[0] in swept and "." in key:
+            arg = "++" + arg
+        out.append(arg)
+    return out
 
 
 def _parse(overrides: list[str]):
