@@ -151,3 +151,32 @@ def test_group_balanced_resampling():
     values, counts = np.unique(group[rows], return_counts=True)
     assert counts.tolist() == [70, 70]
     assert set(np.flatnonzero(group == "b")) <= set(rows)  # every original row kept
+
+
+# ---------------------------------------------------------------- held-out calibration
+BUILT_IN_CONFIGS = ["isolation_forest", "local_outlier_factor", "one_class_svm", "elliptic_envelope", "autoencoder",
+                    "deep_svdd", "deep_svdd_soft_boundary", "adversarial", "adversarial_autoencoder"]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("detector", BUILT_IN_CONFIGS)
+def test_train_quantile_flags_the_nominal_share_of_new_normal_rows(detector):
+    # The cut is the 95% quantile of scores of held-out training rows, so on new
+    # normal rows the false-flag rate is 5% up to sampling noise of both sets:
+    # sd = sqrt(q (1 - q) (1 / n_test_normal + 1 / n_calibration)) (binomial
+    # variance of an exceedance rate plus that of an empirical quantile's level).
+    import warnings
+
+    from evenflag.runner.app import _compose
+    from evenflag.runner.run import execute
+
+    cfg = _compose([f"detector={detector}", "threshold=train_quantile", "metrics=quick", "seed=0",
+                    "dataset=synthetic_claims"], [])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        out = execute(cfg)
+    normal = out.scores[out.scores["label"] == 0]
+    realised = normal["flag"].mean()
+    n_calibration = 0.2 * (1 - 0.3) * (out.dataset.label == 0).sum()  # one_class trains on normal rows
+    sd = np.sqrt(0.05 * 0.95 * (1 / len(normal) + 1 / n_calibration))
+    assert abs(realised - 0.05) <= 3 * sd, (detector, realised, sd)

@@ -35,17 +35,39 @@ def test_anomaly_rates_within_one_row(adult, rate):
         assert abs(n_anomalies - expected) <= 1
 
 
-def test_group_shares_preserved_within_one_row(adult):
+def test_subsampling_keeps_the_ratio_of_group_base_rates(adult):
+    # Adult: 10.9% of women and 30.4% of men earn >50K (UCI Adult, as counted from the
+    # bundled file; ratio 2.78). Cutting the anomaly rate to 5% must scale both
+    # groups' rates by one factor (each group within one row), not keep the
+    # anomalies' group mix (which moved the ratio to 3.4).
     spec = ProtocolSpec(kind="contaminated", test_anomaly_rate=0.05, train_anomaly_rate=0.05)
     split = make_split(adult, spec, seed=7)
     group = adult.group.to_numpy()
+    natural = {v: adult.label[group == v].mean() for v in adult.group.cat.categories}
     for part in (split.test, split.train):
-        for lab in (0, 1):
-            rows = part[adult.label[part] == lab]
-            pool = adult.label == lab
-            for value in adult.group.cat.categories:
-                share_in_pool = (group[pool] == value).mean()
-                assert abs((group[rows] == value).sum() - share_in_pool * len(rows)) <= 1
+        assert abs(adult.label[part].mean() - 0.05) < 0.001
+        factor = {v: adult.label[part][group[part] == v].mean() / natural[v] for v in natural}
+        anomalies = {v: adult.label[part][group[part] == v].sum() for v in natural}
+        rows = {v: (group[part] == v).sum() for v in natural}
+        for v in natural:  # one row more or less moves the factor by at most this much
+            tolerance = 1.0 / (rows[v] * natural[v])
+            assert abs(factor[v] - factor["Male"]) <= tolerance + 1 / (rows["Male"] * natural["Male"]), factor
+            assert anomalies[v] > 0
+        # Normal rows are not subsampled below the natural rate: every normal row of the pool stays.
+        normals = part[adult.label[part] == 0]
+        for v in natural:
+            pool = (adult.label == 0) & (group == v)
+            assert abs((group[normals] == v).sum() - pool.sum() * len(normals) / (adult.label == 0).sum()) <= 1
+
+
+def test_raising_the_anomaly_rate_thins_normal_rows_in_proportion(adult):
+    spec = ProtocolSpec(kind="contaminated", test_anomaly_rate=0.4, train_anomaly_rate=0.3)
+    split = make_split(adult, spec, seed=1)
+    group = adult.group.to_numpy()
+    natural = {v: adult.label[group == v].mean() for v in adult.group.cat.categories}
+    rate = {v: adult.label[split.test][group[split.test] == v].mean() for v in natural}
+    assert abs(adult.label[split.test].mean() - 0.4) < 0.002
+    assert rate["Male"] / rate["Female"] == pytest.approx(natural["Male"] / natural["Female"], rel=0.01)
 
 
 def test_stratified_test_fraction_per_stratum(adult):
@@ -95,3 +117,17 @@ def test_encoder_matches_scikit_learn():
     scaled = StandardScaler().fit_transform(frame[["a"]])
     onehot = OneHotEncoder().fit_transform(frame[["b"]]).toarray()
     np.testing.assert_allclose(ours, np.hstack([scaled, onehot]), atol=1e-6)
+
+
+def test_datasets_show_prints_group_base_rates_before_and_after(tmp_path):
+    import subprocess
+    import sys
+
+    result = subprocess.run([sys.executable, "-m", "evenflag.cli", "datasets", "show", "adult", "--protocol",
+                             "contaminated"], capture_output=True, text=True, cwd=tmp_path, timeout=120)
+    assert result.returncode == 0, result.stderr
+    lines = {line.split()[0]: line.split() for line in result.stdout.splitlines() if line[:6] in ("Female", "Male  ")}
+    # UCI Adult: 10.9% of women and 30.4% of men earn >50K (as counted in the bundled file).
+    assert lines["Female"][1] == "10.9%" and lines["Male"][1] == "30.4%"
+    female, male = float(lines["Female"][3].rstrip("%")), float(lines["Male"][3].rstrip("%"))
+    assert male / female == pytest.approx(30.4 / 10.9, rel=0.05)  # rounded to 0.1% in the output

@@ -111,19 +111,25 @@ def cmd_datasets_show(args) -> int:
     print(f"source {ds.source}, sha256 {ds.sha256}")
     print(f"protocol {args.protocol} (seed {args.seed}): train {len(split.train):,} rows, test {len(split.test):,} rows\n")
     rows = []
+    group = ds.group.to_numpy()
     for value in ds.group.cat.categories:
         tr, te = data.group_train == value, data.group_test == value
         rows.append({
             "group": value,
+            "dataset anomaly rate": f"{ds.label[group == value].mean():.1%}",
             "train rows": int(tr.sum()),
             "train anomaly rate": f"{data.label_train[tr].mean():.1%}" if tr.any() else "-",
             "test rows": int(te.sum()),
             "test anomaly rate": f"{data.label_test[te].mean():.1%}" if te.any() else "-",
         })
-    rows.append({"group": "all", "train rows": len(split.train), "test rows": len(split.test),
-                 "train anomaly rate": f"{np.mean(data.label_train):.1%}",
+    rows.append({"group": "all", "dataset anomaly rate": f"{np.mean(ds.label):.1%}", "train rows": len(split.train),
+                 "test rows": len(split.test), "train anomaly rate": f"{np.mean(data.label_train):.1%}",
                  "test anomaly rate": f"{np.mean(data.label_test):.1%}"})
-    _print_table(rows, ["group", "train rows", "train anomaly rate", "test rows", "test anomaly rate"])
+    _print_table(rows, ["group", "dataset anomaly rate", "train rows", "train anomaly rate", "test rows",
+                        "test anomaly rate"])
+    if spec.kind == "contaminated" or spec.test_anomaly_rate is not None:
+        print("\nSubsampling scales every group's anomaly rate by the same factor, so the ratios between "
+              "groups' rates stay as in the dataset.")
     return 0
 
 
