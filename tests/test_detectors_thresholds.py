@@ -180,3 +180,19 @@ def test_train_quantile_flags_the_nominal_share_of_new_normal_rows(detector):
     n_calibration = 0.2 * (1 - 0.3) * (out.dataset.label == 0).sum()  # one_class trains on normal rows
     sd = np.sqrt(0.05 * 0.95 * (1 / len(normal) + 1 / n_calibration))
     assert abs(realised - 0.05) <= 3 * sd, (detector, realised, sd)
+
+
+def test_group_thresholds_share_the_flags_by_largest_remainder():
+    # Largest-remainder (Hamilton) apportionment: the total round(0.05 x 300) = 15 is
+    # kept and every group gets floor or ceil of its exact quota (0.55, 4.5, 9.95).
+    rng = np.random.default_rng(0)
+    group = np.array(["tiny"] * 11 + ["mid"] * 90 + ["big"] * 199)
+    scores = rng.normal(size=300)
+    flags = flag_per_group(ThresholdSpec("top_fraction", 0.05), scores, group)
+    assert flags.sum() == 15
+    for name, size in (("tiny", 11), ("mid", 90), ("big", 199)):
+        quota = 15 * size / 300
+        assert np.floor(quota) <= flags[group == name].sum() <= np.ceil(quota)
+    # Python's round(0.55) would be 1 here but round(0.5) = 0 (half to even) for a
+    # 10-row group: with the quota shared out, a small group is not silently skipped.
+    assert flags[group == "tiny"].sum() == 1

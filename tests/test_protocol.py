@@ -36,8 +36,8 @@ def test_anomaly_rates_within_one_row(adult, rate):
 
 
 def test_subsampling_keeps_the_ratio_of_group_base_rates(adult):
-    # Adult: 10.9% of women and 30.4% of men earn >50K (UCI Adult, as counted from the
-    # bundled file; ratio 2.78). Cutting the anomaly rate to 5% must scale both
+    # Adult: 10.9% of women and 30.4% of men earn >50K (regression values counted in the
+    # bundled UCI file; ratio 2.78). Cutting the anomaly rate to 5% must scale both
     # groups' rates by one factor (each group within one row), not keep the
     # anomalies' group mix (which moved the ratio to 3.4).
     spec = ProtocolSpec(kind="contaminated", test_anomaly_rate=0.05, train_anomaly_rate=0.05)
@@ -127,7 +127,7 @@ def test_datasets_show_prints_group_base_rates_before_and_after(tmp_path):
                              "contaminated"], capture_output=True, text=True, cwd=tmp_path, timeout=120)
     assert result.returncode == 0, result.stderr
     lines = {line.split()[0]: line.split() for line in result.stdout.splitlines() if line[:6] in ("Female", "Male  ")}
-    # UCI Adult: 10.9% of women and 30.4% of men earn >50K (as counted in the bundled file).
+    # 10.9% of women and 30.4% of men earn >50K: regression values counted in the bundled UCI Adult file.
     assert lines["Female"][1] == "10.9%" and lines["Male"][1] == "30.4%"
     female, male = float(lines["Female"][3].rstrip("%")), float(lines["Male"][3].rstrip("%"))
     assert male / female == pytest.approx(30.4 / 10.9, rel=0.05)  # rounded to 0.1% in the output
