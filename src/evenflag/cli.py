@@ -133,6 +133,17 @@ def cmd_datasets_show(args) -> int:
     return 0
 
 
+def _read_note(path: str | None) -> str | None:
+    from pathlib import Path
+
+    if path is None:
+        return None
+    try:
+        return Path(path).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise EvenflagError(f"cannot read --note file {path} ({exc.__class__.__name__}); give a UTF-8 Markdown file") from exc
+
+
 def cmd_report(args) -> int:
     from pathlib import Path
 
@@ -152,7 +163,8 @@ def cmd_report(args) -> int:
     out = Path(args.out) if args.out else Path("outputs") / "reports" / "+".join(args.study)
     request = ReportRequest(uri=uri, studies=args.study, where=where,
                             metrics=args.metrics.split(",") if args.metrics else list(DEFAULT_METRICS),
-                            out=out, figures=not args.no_figures, memo=args.memo, html=args.html, run_id=args.run_id)
+                            out=out, figures=not args.no_figures, memo=args.memo, html=args.html, run_id=args.run_id,
+                            note=_read_note(args.note))
     written = build_report(request)
     print(written.pop("_markdown"))
     print("written: " + ", ".join(str(p) for p in written.values()))
@@ -192,6 +204,8 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("--memo", action="store_true", help="also write memo.md: metadata, table, figures, reading, caution")
     report.add_argument("--html", action="store_true", help="with --memo: also write memo.html")
     report.add_argument("--run-id", default=None, help="the run whose per-group score ECDF is drawn (default: the first)")
+    report.add_argument("--note", default=None, metavar="FILE",
+                        help="with --memo: a Markdown file of the authors' own notes, added as a section of the memo")
     report.set_defaults(func=cmd_report)
     check = sub.add_parser("check-detector", help="conformance checks for a detector plugin")
     check.add_argument("target", help="module:Class or a registered detector name")

@@ -12,7 +12,8 @@ Interval methods:
 ``wilson``     Wilson score interval for a proportion
 ``newcombe``   Newcombe's hybrid score interval for a difference of proportions
 ``katz``       Katz log interval for a ratio of proportions
-``delong``     DeLong's normal interval for AUROC
+``delong``     DeLong's variance: a normal interval on the logit scale for an
+               AUROC, on the plain scale for a difference of AUROCs
 ``rate``       ``bootstrap`` when flags come from a rank rule and every count
                compared is at least ``MIN_BOOTSTRAP_COUNT``, else the closed
                form named after the slash (``rate/wilson`` ...)

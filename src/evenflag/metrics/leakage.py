@@ -68,7 +68,7 @@ def probe_auroc(codes, proba, level: float = 0.95, n_bootstrap: int = 200, seed:
 
     if proba.shape[1] == 2:
         auc, variance = delong_components(proba[codes == 1, 1], proba[codes == 0, 1])
-        return (auc, *normal_interval(auc, variance, level))
+        return (auc, *normal_interval(auc, variance, level))  # plain: an AUROC below 0.5 is possible here
     auc = _macro_auroc(codes, proba)
     if n_bootstrap <= 0:
         return auc, float("nan"), float("nan")

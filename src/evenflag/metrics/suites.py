@@ -35,7 +35,14 @@ from evenflag.metrics.detection import detection_from_counts
 from evenflag.metrics.facts import MIN_BOOTSTRAP_COUNT, fact
 from evenflag.metrics.flag_fairness import flag_fairness_from_counts, flag_tests, rate_counts
 from evenflag.metrics.inputs import FlagRule, MetricInput, UndefinedMetricWarning, counts_from_cells, rethreshold
-from evenflag.metrics.intervals import delong_from_blocks, katz_ratio, newcombe_difference, normal_interval, wilson
+from evenflag.metrics.intervals import (
+    delong_from_blocks,
+    katz_ratio,
+    logit_interval,
+    newcombe_difference,
+    normal_interval,
+    wilson,
+)
 from evenflag.metrics.leakage import leakage
 from evenflag.metrics.score_fairness import score_fairness_from_counts
 
@@ -183,8 +190,10 @@ def closed_form_intervals(methods: dict, values: dict, inputs: MetricInput, coun
                 low, high = katz_ratio(*pairs[0], *pairs[1], level)
         elif method == "delong":
             estimate, variance = delong[key]
-            span = (-1.0, 1.0) if key.startswith("auroc_diff/") else (0.0, 1.0)
-            low, high = normal_interval(estimate, variance, level, *span)
+            if key.startswith("auroc_diff/"):
+                low, high = normal_interval(estimate, variance, level, -1.0, 1.0)
+            else:
+                low, high = logit_interval(estimate, variance, level)
         else:
             continue
         out[f"{key}.ci_low"], out[f"{key}.ci_high"] = float(low), float(high)

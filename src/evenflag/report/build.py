@@ -20,6 +20,7 @@ class ReportRequest:
     memo: bool = False
     html: bool = False
     run_id: str | None = None
+    note: str | None = None      # the authors' own Markdown, a section of the memo
 
 
 def caption(runs: RunTable) -> str:

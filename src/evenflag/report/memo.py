@@ -211,6 +211,8 @@ def write_memo(runs: RunTable, table: pd.DataFrame, request, written: dict, html
     if figures:
         parts += ["", "## Figures", ""]
         parts += [f"![{name[:-4].replace('_', ' ')}]({name})" for name in figures]
+    if getattr(request, "note", None):
+        parts += ["", "## Notes from the authors", "", request.note.strip()]
     failed = runs.runs[runs.runs["status"] == "FAILED"]
     if len(failed):
         parts += ["", "## Failed runs", ""]

@@ -4,8 +4,9 @@ Comparisons of Classifiers over Multiple Data Sets", JMLR 7, 2006).
 Datasets are the blocks: every comparison takes one value per dataset and
 method (the mean over seeds). Seeds of one dataset share its data and are not
 independent evidence about methods in general; treating them as separate pairs
-makes a test reject far too often (38.8% at a nominal 5% in a simulation with
-5 datasets x 5 seeds and no real difference).
+makes a test reject far too often (34.6% at a nominal 5%, against 5.0% over
+dataset means, in 1,000 simulated studies of 10 datasets x 5 seeds with no
+difference on average).
 
 * Wilcoxon signed-rank test between two methods over datasets, with the
   smallest p-value the number of datasets allows;
@@ -120,8 +121,9 @@ def friedman_permutation_p(ranks: np.ndarray, seed: int = 0) -> tuple[float, str
 
     Examples
     --------
-    >>> friedman_permutation_p(np.array([[1.0, 2.0, 3.0], [1.0, 2.0, 3.0]]))
-    (0.16666666666666666, 'exact permutation')
+    >>> p, method = friedman_permutation_p(np.array([[1.0, 2.0, 3.0], [1.0, 2.0, 3.0]]))
+    >>> round(p, 12), method
+    (0.166666666667, 'exact permutation')
     """
     n, k = ranks.shape
     observed = np.sum(ranks.sum(axis=0) ** 2)
