@@ -158,8 +158,16 @@ def cmd_report(args) -> int:
             raise EvenflagError(f"--where takes KEY=VALUE, got '{item}'")
         where[key] = value
     uri = args.tracking_uri or default_store(Path.cwd())[0]
-    if uri.startswith("sqlite:///") and not Path(uri[len("sqlite:///"):]).exists():
-        raise EvenflagError(f"no tracking store at {uri}; run a sweep first (evenflag run -m ...) or pass --tracking-uri")
+    if uri.startswith("sqlite:///"):
+        from evenflag.runner.store import check_readable_store
+
+        check_readable_store(Path(uri[len("sqlite:///"):]))
+    elif uri.startswith(("http://", "https://")):
+        from evenflag.runner.tracking import check_server
+
+        check_server(uri, args.timeout)
+    else:
+        raise EvenflagError(f"--tracking-uri '{uri}' is not supported; use sqlite:///path/to/mlflow.db or http://host:port")
     out = Path(args.out) if args.out else Path("outputs") / "reports" / "+".join(args.study)
     request = ReportRequest(uri=uri, studies=args.study, where=where,
                             metrics=args.metrics.split(",") if args.metrics else list(DEFAULT_METRICS),
@@ -196,6 +204,8 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("--study", action="append", required=True, help="study name; repeat for several")
     report.add_argument("--tracking-uri", default=None,
                         help="MLflow tracking URI (default: the local store under outputs/tracking/)")
+    report.add_argument("--timeout", type=float, default=15.0,
+                        help="seconds to wait for a tracking server before giving up (default 15)")
     report.add_argument("--where", action="append", default=[], metavar="KEY=VALUE",
                         help="keep runs whose param or tag KEY equals VALUE; repeatable")
     report.add_argument("--metrics", default=None, help="comma-separated metric keys for the table columns")

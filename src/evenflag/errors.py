@@ -40,3 +40,10 @@ class DetectorError(EvenflagError):
 
 class MetricInputError(EvenflagError):
     """Inputs to a metric are malformed (lengths differ, one group only...)."""
+
+
+def warn_line(text: str) -> None:
+    """A one-line warning on stderr (Python's warnings print the source line too)."""
+    import sys
+
+    print(f"evenflag: warning: {text}", file=sys.stderr, flush=True)

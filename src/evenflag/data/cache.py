@@ -3,8 +3,9 @@
 Layout under the cache root::
 
     wheels/<wheel file>                  pinned wheels from the package index
-    parsed/<name>-<sha16>.parquet        parsed table, keyed by the raw sha256
-    parsed/<name>-<sha16>.parquet.sha256 sha256 of that Parquet file
+    parsed/<name>-<sha16>-<opts8>.parquet  parsed table, keyed by the raw sha256 and
+                                           every option that changes the parse
+    parsed/<name>-<sha16>-<opts8>.parquet.sha256  sha256 of that Parquet file
 """
 
 from __future__ import annotations
@@ -59,13 +60,42 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
         raise
 
 
-def parsed_path(name: str, raw_sha256: str) -> Path:
-    return cache_root() / "parsed" / f"{name}-{raw_sha256[:16]}.parquet"
+PARSER_VERSION = 2  # bump when parse_bytes changes what a table looks like
 
 
-def read_parsed(name: str, raw_sha256: str) -> pd.DataFrame | None:
+def parse_options(fmt: str, na_values=()) -> str:
+    """A short key of everything besides the raw bytes that shapes the parsed table.
+
+    Examples
+    --------
+    >>> parse_options("csv") == parse_options("csv", ())
+    True
+    >>> parse_options("csv") == parse_options("csv", ["none"])
+    False
+    """
+    import json
+
+    text = json.dumps({"format": fmt, "na_values": [str(v) for v in na_values], "parser": PARSER_VERSION},
+                      sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()[:8]
+
+
+def table_sha256(frame: pd.DataFrame) -> str:
+    """sha256 of a parsed table's content (column names, dtypes and values), recorded
+    with every run so two runs can tell whether they read the same table."""
+    digest = hashlib.sha256()
+    digest.update(repr([(str(c), str(t)) for c, t in frame.dtypes.items()]).encode())
+    digest.update(pd.util.hash_pandas_object(frame, index=False).to_numpy().tobytes())
+    return digest.hexdigest()
+
+
+def parsed_path(name: str, raw_sha256: str, options: str = "") -> Path:
+    return cache_root() / "parsed" / f"{name}-{raw_sha256[:16]}-{options or parse_options('csv')}.parquet"
+
+
+def read_parsed(name: str, raw_sha256: str, options: str = "") -> pd.DataFrame | None:
     """The cached parsed table, or None. A file that fails its check is refused."""
-    path = parsed_path(name, raw_sha256)
+    path = parsed_path(name, raw_sha256, options)
     marker = path.with_name(path.name + ".sha256")
     if not path.exists() or not marker.exists():
         return None
@@ -78,10 +108,19 @@ def read_parsed(name: str, raw_sha256: str) -> pd.DataFrame | None:
     return pd.read_parquet(path)
 
 
-def write_parsed(name: str, raw_sha256: str, frame: pd.DataFrame) -> Path:
-    path = parsed_path(name, raw_sha256)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.")
+def write_parsed(name: str, raw_sha256: str, frame: pd.DataFrame, options: str = "") -> Path | None:
+    """Keep a parsed table for the next process; None (with a warning) when the
+    cache cannot be written: the data is parsed again next time, nothing fails."""
+    path = parsed_path(name, raw_sha256, options)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.")
+    except OSError as exc:
+        from evenflag.errors import warn_line
+
+        warn_line(f"the dataset cache {path.parent} cannot be written ({exc.strerror}); '{name}' is parsed "
+                  "again in every process (set EVENFLAG_CACHE_DIR to a writable folder)")
+        return None
     os.close(fd)
     try:
         frame.to_parquet(tmp, index=False)
@@ -94,8 +133,8 @@ def write_parsed(name: str, raw_sha256: str, frame: pd.DataFrame) -> Path:
     return path
 
 
-def is_parsed_cached(name: str, raw_sha256: str) -> bool:
-    return parsed_path(name, raw_sha256).exists()
+def is_parsed_cached(name: str, raw_sha256: str, options: str = "") -> bool:
+    return parsed_path(name, raw_sha256, options).exists()
 
 
 def clear(name: str | None = None) -> list[Path]:

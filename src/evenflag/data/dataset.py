@@ -39,6 +39,9 @@ class Dataset:
         them back among the features.
     source, sha256, licence, citation : str
         Provenance: where the bytes came from and their sha256.
+    table_sha256 : str
+        Content hash of the parsed table: two runs that read the same bytes with
+        different parse options (``na_values``) differ here.
     merged_groups : list of str
         Group values folded into ``other`` because they were below
         ``min_group_size``.
@@ -57,6 +60,7 @@ class Dataset:
     label_column: str = ""
     anomaly_values: tuple[str, ...] = ()
     merged_groups: list[str] = field(default_factory=list)
+    table_sha256: str = ""   # content hash of the parsed table (set by load_dataset)
 
     @property
     def n_rows(self) -> int:

@@ -11,6 +11,7 @@ from typing import Any
 from omegaconf import DictConfig, OmegaConf
 from omegaconf.errors import OmegaConfBaseException
 
+from evenflag.data.cache import table_sha256
 from evenflag.data.dataset import Dataset, build_dataset
 from evenflag.data.sources import reader_for
 from evenflag.data.spec import DatasetSpec
@@ -98,6 +99,7 @@ def load_dataset(config: Any) -> Dataset:
             licence=spec.licence,
             citation=spec.citation,
         )
+        _LOADED[key].table_sha256 = table_sha256(frame)
     return _LOADED[key]
 
 

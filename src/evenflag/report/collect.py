@@ -52,8 +52,19 @@ def load_runs(uri: str, studies: list[str], where: dict[str, str] | None = None)
     os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
     from mlflow.tracking import MlflowClient
 
+    from mlflow.exceptions import MlflowException
+
     client = MlflowClient(tracking_uri=uri)
     experiments = []
+    try:
+        return _load(client, uri, studies, where, experiments)
+    except MlflowException as exc:
+        from evenflag.runner.tracking import store_problem
+
+        raise EvenflagError(f"cannot read the tracking store {uri} ({store_problem(exc)})") from exc
+
+
+def _load(client, uri, studies, where, experiments) -> RunTable:
     for study in studies:
         found = client.get_experiment_by_name(study)
         if found is None:

@@ -10,6 +10,8 @@ failed.
 from __future__ import annotations
 
 import os
+import signal
+import socket
 import sys
 import time
 import traceback
@@ -52,9 +54,12 @@ def launch(argv: list[str]) -> int:
         raise ConfigError("comma-separated values sweep several runs; add -m (evenflag run -m ...)")
     total = _count_jobs(overrides, first) if multirun else 1
 
+    _check_launcher(first)
+    from evenflag.runner.lease import LAUNCH_ID_ENV, LAUNCHER_HOST_ENV, LAUNCHER_PID_ENV
     from evenflag.runner.tracking import tracker_for, ui_command
 
-    tracker = tracker_for(first.tracking.uri, first.study, first.tracking.artifact_root)
+    tracker = tracker_for(first.tracking.uri, first.study, first.tracking.artifact_root, None,
+                          first.tracking.timeout_seconds, first.tracking.claim_settle_seconds)
     tracker.experiment_id  # creates the store and the study once, before any job
     closed = tracker.close_stale_runs()
     if closed:
@@ -62,24 +67,48 @@ def launch(argv: list[str]) -> int:
 
     # The ledger lives under the launch directory (on clusters usually a shared
     # file system, unlike /tmp), one file per launch, removed at the end.
-    path = Path.cwd() / "outputs" / ".ledgers" / f"{time.strftime('%Y%m%d-%H%M%S')}-{os.getpid()}.jsonl"
+    folder = Path.cwd() / "outputs" / ".ledgers"
+    ledger.remove_stale(folder)
+    path = folder / f"{time.strftime('%Y%m%d-%H%M%S')}-{os.getpid()}.jsonl"
     path.parent.mkdir(parents=True, exist_ok=True)
+    launch_id = f"{socket.gethostname()}-{os.getpid()}-{time.time_ns()}"
+    previous = signal.signal(signal.SIGTERM, _terminate)
+    interrupted = "the launch ended"
     try:
         os.environ[ledger.LEDGER_ENV] = str(path)
         os.environ[ledger.TOTAL_ENV] = str(total)
         os.environ[ledger.START_ENV] = str(time.time())
-        # Jobs write the store the launcher prepared, even in other processes.
+        # Jobs write the store the launcher prepared, even in other processes,
+        # and watch the launcher: workers whose launcher dies end their runs.
         os.environ["EVENFLAG_LAUNCH_DIR"] = str(Path.cwd())
-        code = _call_hydra(_force_keys_of_swept_groups(argv, overrides, extra_dirs) if multirun else argv)
+        os.environ[LAUNCHER_PID_ENV] = str(os.getpid())
+        os.environ[LAUNCHER_HOST_ENV] = socket.gethostname()
+        os.environ[LAUNCH_ID_ENV] = launch_id
+        _STOPPED.clear()
+        try:
+            code = _call_hydra(_force_keys_of_swept_groups(argv, overrides, extra_dirs) if multirun else argv)
+        except KeyboardInterrupt:
+            interrupted = "the launch was interrupted (SIGINT)"
+            raise
+        if _STOPPED:
+            interrupted = "the launch was stopped (SIGTERM)"
         entries = ledger.read(path)
     finally:
+        signal.signal(signal.SIGTERM, previous)
+        try:  # runs of this launch still RUNNING (in workers the launcher stopped): end them with the reason
+            tracker.close_launch(launch_id, interrupted)
+        except Exception:  # the store is gone or unreachable: the lease closes them later
+            pass
         path.unlink(missing_ok=True)
-        for key in (ledger.LEDGER_ENV, ledger.TOTAL_ENV, ledger.START_ENV):
+        for key in (ledger.LEDGER_ENV, ledger.TOTAL_ENV, ledger.START_ENV, LAUNCHER_PID_ENV, LAUNCHER_HOST_ENV,
+                    LAUNCH_ID_ENV):
             os.environ.pop(key, None)
 
     counts = {s: sum(e["status"] == s for e in entries) for s in ("done", "skipped", "failed")}
-    print(f"\nstudy '{first.study}': {counts['done']} done, {counts['skipped']} skipped (already finished), "
-          f"{counts['failed']} failed, of {total}")
+    elsewhere = sum(e["status"] == "skipped" and "another launch" in e.get("summary", "") for e in entries)
+    print(f"\nstudy '{first.study}': {counts['done']} done, {counts['skipped'] - elsewhere} skipped (already finished), "
+          + (f"{elsewhere} running in another launch, " if elsewhere else "")
+          + f"{counts['failed']} failed, of {total}")
     for entry in entries:
         if entry["status"] == "failed":
             print(f"  failed: {entry['name']}: {entry['message']}")
@@ -87,9 +116,29 @@ def launch(argv: list[str]) -> int:
         print(f"  {total - len(entries)} job(s) did not report; see the log above")
     print(f"results: {tracker.uri} (experiment '{first.study}')")
     print(f"open them: {ui_command(tracker.uri)}")
+    if _STOPPED:
+        print("evenflag: stopped by SIGTERM; relaunch the same command to run what is missing", file=sys.stderr)
+        return 143
     if code:
         return code
     return 1 if counts["failed"] or len(entries) < total else 0
+
+
+_STOPPED: list[int] = []
+
+
+def _terminate(signum, frame):
+    """SIGTERM ends the launch like Ctrl-C: the running job records its run as KILLED first."""
+    _STOPPED.append(signum)
+    raise SystemExit("SIGTERM")
+
+
+def _check_launcher(cfg: DictConfig) -> None:
+    launcher = OmegaConf.select(cfg, "hydra.launcher") or {}
+    n_jobs = launcher.get("n_jobs") if hasattr(launcher, "get") else None
+    if n_jobs is not None and (not isinstance(n_jobs, int) or n_jobs == 0 or n_jobs < -1):
+        raise ConfigError(f"hydra.launcher.n_jobs={n_jobs} is invalid; use a positive number of parallel jobs "
+                          "(or -1 for one per core)")
 
 
 def _call_hydra(argv: list[str]) -> int:

@@ -20,7 +20,9 @@ class TrackingSpec:
     tracking URI (``http://host:5000`` for a team server, ``sqlite:///path``)."""
 
     uri: Optional[str] = None
-    artifact_root: Optional[str] = None
+    artifact_root: Optional[str] = None     # null: beside a SQLite store; the server's default for a server
+    timeout_seconds: float = 15.0           # a tracking server that does not answer within this fails the launch
+    claim_settle_seconds: float = 2.0       # server only: wait before a claim of a cell is final (see tracking.py)
 
 
 @dataclass

@@ -13,6 +13,7 @@ from pathlib import Path
 from omegaconf import DictConfig, OmegaConf
 
 from evenflag.runner import ledger
+from evenflag.runner.lease import Heartbeat
 from evenflag.runner.provenance import fingerprint, flatten, git_state, library_versions
 from evenflag.runner.tracking import TAG, tracker_for
 
@@ -44,25 +45,27 @@ def run_job(cfg: DictConfig) -> str:
     limit_threads(cfg.get("threads"))
     launch_dir = Path(os.environ.get("EVENFLAG_LAUNCH_DIR", Path.cwd()))
     resolved = OmegaConf.to_container(cfg, resolve=True)
-    tracker = run_id = None
+    tracker = run_id = beat = None
     try:
-        tracker = tracker_for(cfg.tracking.uri, cfg.study, cfg.tracking.artifact_root, launch_dir)
+        tracker = tracker_for(cfg.tracking.uri, cfg.study, cfg.tracking.artifact_root, launch_dir,
+                              cfg.tracking.timeout_seconds, cfg.tracking.claim_settle_seconds)
         from evenflag.data.registry import load_dataset, to_spec
 
-        data_sha = load_dataset(to_spec(resolved["dataset"])).sha256
-        fp = fingerprint(resolved, data_sha)
-        if not cfg.rerun:
-            existing = tracker.find_finished(fp)
-            if existing:
-                ledger.record({"status": "skipped", "name": name, "run_id": existing,
-                               "summary": f"finished before as run {existing[:8]}"})
-                return "skipped"
+        dataset = load_dataset(to_spec(resolved["dataset"]))
+        fp = fingerprint(resolved, dataset.sha256, dataset.table_sha256)
         commit, dirty = git_state()
-        tags = {f"{TAG}fingerprint": fp, f"{TAG}data_sha256": data_sha, f"{TAG}git_commit": commit,
-                f"{TAG}git_dirty": str(dirty).lower(), f"{TAG}dataset": cfg.dataset.name,
+        tags = {f"{TAG}data_sha256": dataset.sha256, f"{TAG}table_sha256": dataset.table_sha256,
+                f"{TAG}git_commit": commit, f"{TAG}git_dirty": str(dirty).lower(), f"{TAG}dataset": cfg.dataset.name,
                 **{f"{TAG}version.{k}": v for k, v in library_versions().items()},
                 **{str(k): str(v) for k, v in (cfg.tags or {}).items()}}
-        run_id = tracker.start(name, tags)
+        # Claim the cell before computing: a finished run or a live claim elsewhere means skip.
+        run_id, busy = tracker.claim(fp, name, tags, rerun=bool(cfg.rerun))
+        if run_id is None:
+            ledger.record({"status": "skipped", "name": name, "summary": busy})
+            return "skipped"
+        claimed = run_id
+        beat = Heartbeat(lambda: tracker.heartbeat(claimed),
+                         on_orphaned=lambda: tracker.kill(claimed, "its launcher died (the parent process was killed)"))
         # Params first, so a run that fails below still says what it was.
         tracker.log(run_id, flatten({k: v for k, v in resolved.items() if k not in ("tracking", "tags")}), {}, {})
         out = execute(cfg)
@@ -79,11 +82,21 @@ def run_job(cfg: DictConfig) -> str:
         if out.history:
             tracker.log_history(run_id, out.history)
         tracker.log_artifacts(run_id, artifacts)
+        beat.stop()
         tracker.finish(run_id)
+        if cfg.rerun:
+            tracker.supersede(fp, run_id)
         summary = ", ".join(f"{k} {out.metrics[k]:.3f}" for k in ("auroc", "flag_rate_ratio") if k in out.metrics)
         ledger.record({"status": "done", "name": name, "run_id": run_id, "summary": summary,
                        "seconds": round(time.time() - started, 2)})
         return "done"
+    except (KeyboardInterrupt, SystemExit) as exc:  # Ctrl-C, or SIGTERM turned into SystemExit by the launcher
+        if tracker is not None and run_id is not None:
+            try:
+                tracker.kill(run_id, f"interrupted ({_signal_name(exc)}) before it finished")
+            except Exception:  # the store is unreachable: the lease will close the run later
+                pass
+        raise
     except Exception as exc:  # isolate the failure: record it, let the sweep go on
         message = format_exception(exc)
         if tracker is not None and run_id is not None:
@@ -95,3 +108,12 @@ def run_job(cfg: DictConfig) -> str:
         if not os.environ.get(ledger.LEDGER_ENV):
             print(f"evenflag: run failed: {message}")
         return "failed"
+    finally:
+        if beat is not None:
+            beat.stop()
+
+
+def _signal_name(exc: BaseException) -> str:
+    if isinstance(exc, KeyboardInterrupt):
+        return "SIGINT"
+    return str(exc.code) if isinstance(exc, SystemExit) and isinstance(exc.code, str) else "SIGTERM"

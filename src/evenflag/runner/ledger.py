@@ -51,3 +51,17 @@ def read(path: str | Path) -> list[dict]:
 def _clock(seconds: float) -> str:
     seconds = int(round(seconds))
     return f"{seconds // 60}m{seconds % 60:02d}s" if seconds >= 60 else f"{seconds}s"
+
+
+def remove_stale(folder: Path) -> int:
+    """Delete ledgers of launches whose process is gone (a killed launch cannot
+    remove its own). Ledger names end in the launcher's process id."""
+    from evenflag.runner.lease import process_alive
+
+    removed = 0
+    for path in Path(folder).glob("*.jsonl") if Path(folder).exists() else []:
+        pid = path.stem.rsplit("-", 1)[-1]
+        if pid.isdigit() and not process_alive(int(pid)):
+            path.unlink(missing_ok=True)
+            removed += 1
+    return removed
