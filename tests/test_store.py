@@ -310,3 +310,28 @@ def test_stale_ledgers_of_killed_launches_are_removed(tmp_path):
     stale.write_text('{"status": "done"}\n')
     assert evenflag(tmp_path, "run", *SMALL, "study=ledger").returncode == 0
     assert not stale.exists() and not list(ledgers.glob("*.jsonl"))
+
+
+def test_detector_module_with_a_syntax_error_is_one_line(tmp_path):
+    package = tmp_path / "broken_pkg"
+    package.mkdir()
+    (package / "__init__.py").write_text("")
+    (package / "bad.py").write_text("def broken(:\n")
+    configs = tmp_path / "configs" / "detector"
+    configs.mkdir(parents=True)
+    (configs / "bad.yaml").write_text("_target_: broken_pkg.bad.Thing\n")
+    env = {"PYTHONPATH": f"{REPO}:{tmp_path}"}
+    for args in (["run", "--config-dir", str(tmp_path / "configs"), *SMALL, "detector=bad"],
+                 ["check-detector", "broken_pkg.bad:Thing"]):
+        result = evenflag(tmp_path, *args, env=env)
+        assert result.returncode == 2 and len(result.stderr.strip().splitlines()) == 1, result.stderr
+        assert "syntax error at" in result.stderr and "bad.py:1" in result.stderr
+
+
+def test_bundled_data_needs_no_writable_cache(tmp_path):
+    blocker = tmp_path / "a-file"
+    blocker.write_text("")  # a cache folder below a file can never be created, even by root
+    result = evenflag(tmp_path, "run", "dataset=german_credit", "metrics=quick", "study=nocache",
+                      env={"EVENFLAG_CACHE_DIR": str(blocker / "cache")})
+    assert result.returncode == 0, result.stderr
+    assert "cannot be written" in result.stderr and len(result.stderr.strip().splitlines()) == 1

@@ -51,8 +51,14 @@ def import_object(path: str, what: str = "detector"):
         module_name, _, attr = path.rpartition(".")
     try:
         return getattr(importlib.import_module(module_name), attr)
+    except SyntaxError as exc:
+        raise UnknownNameError(f"{what} '{path}': its module has a syntax error at {exc.filename}:{exc.lineno} "
+                               f"({exc.msg}); fix the file") from exc
     except (ImportError, AttributeError, ValueError) as exc:
         raise UnknownNameError(f"{what} '{path}' could not be imported ({exc}); check the import path") from exc
+    except Exception as exc:  # the module raised while it was imported
+        raise UnknownNameError(f"{what} '{path}': importing its module raised {exc.__class__.__name__}: "
+                               f"{str(exc).splitlines()[0] if str(exc) else ''}; fix the module") from exc
 
 
 def registered_names() -> dict[str, str]:
