@@ -161,6 +161,17 @@ def test_sweep_to_an_mlflow_server_on_loopback(tmp_path):
         runs = runs_of(MlflowClient(tracking_uri=uri), "remote")
         assert len(runs) == 2 and {r.info.status for r in runs} == {"FINISHED"}
         assert "auroc" in runs[0].data.metrics
+        # Two overlapping sweeps at once: no file lock reaches a server, the claim
+        # rule (first claim wins, the others withdraw) must still run each cell once.
+        environment = {**os.environ, "PYTHONPATH": str(REPO)}
+        launches = [subprocess.Popen([sys.executable, "-m", "evenflag.cli", "run", "-m", *SMALL, "study=remote",
+                                      "tracking=server", f"tracking.uri={uri}", f"seed={seeds}"],
+                                     cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                                     env=environment) for seeds in ("2,3,4", "3,4,5")]
+        for launch in launches:
+            assert launch.wait(timeout=600) == 0, launch.stderr.read()[-2000:]
+        finished = [r for r in runs_of(MlflowClient(tracking_uri=uri), "remote") if r.info.status == "FINISHED"]
+        assert sorted(r.data.params["seed"] for r in finished) == ["0", "1", "2", "3", "4", "5"]
     finally:
         server.terminate()
         server.wait(timeout=30)
