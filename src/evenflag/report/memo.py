@@ -117,7 +117,17 @@ def difference_lines(runs: RunTable) -> list[str]:
 
 def variant_pairs(methods: list[str]) -> list[tuple[str, str]]:
     """(fairness variant, its plain base) pairs among method labels:
-    'adversarial deep_svdd w=1' and 'deep_svdd + group_balanced' against 'deep_svdd'."""
+    'adversarial deep_svdd w=1' and 'deep_svdd + group_balanced' against
+    'deep_svdd'; in a weight sweep without the plain base, each weight against
+    weight 0.
+
+    Examples
+    --------
+    >>> variant_pairs(["deep_svdd", "adversarial deep_svdd", "deep_svdd + group_balanced"])
+    [('adversarial deep_svdd', 'deep_svdd'), ('deep_svdd + group_balanced', 'deep_svdd')]
+    >>> variant_pairs(["adversarial deep_svdd w=0", "adversarial deep_svdd w=1"])
+    [('adversarial deep_svdd w=1', 'adversarial deep_svdd w=0')]
+    """
     import re
 
     pairs = []
@@ -125,11 +135,12 @@ def variant_pairs(methods: list[str]) -> list[tuple[str, str]]:
         settings = re.search(r" \[.*\]$", method)
         suffix = settings.group(0) if settings else ""
         core = method[: len(method) - len(suffix)]
-        base = re.sub(r" w=[^ ]+$", "", core.split(" + ")[0])
-        base = base[len("adversarial "):] if base.startswith("adversarial ") else base
-        base += suffix
-        if base != method and base in methods:
-            pairs.append((method, base))
+        plain = re.sub(r" w=[^ ]+$", "", core.split(" + ")[0])
+        plain = plain[len("adversarial "):] if plain.startswith("adversarial ") else plain
+        for base in (plain + suffix, re.sub(r" w=[^ ]+$", " w=0", core) + suffix):
+            if base != method and base in methods:
+                pairs.append((method, base))
+                break
     return pairs
 
 
