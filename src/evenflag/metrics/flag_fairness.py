@@ -150,6 +150,9 @@ def flips_to_parity(flagged, rows, line: float = FOUR_FIFTHS) -> float:
         return 0.0
     ratio = Fraction(line).limit_denominator(1000)
     a, b = ratio.numerator, ratio.denominator            # line = a / b
+    lo, hi = int(np.argmin(flagged / rows)), int(np.argmax(flagged / rows))
+    if b * int(flagged[lo]) * int(rows[hi]) >= a * int(flagged[hi]) * int(rows[lo]):
+        return 0.0                                       # the rule already passes
     best = None
     for h, n_h in enumerate(rows):                       # the highest rate is k / n_h
         k = np.arange(1, n_h + 1, dtype=np.int64)[:, None]

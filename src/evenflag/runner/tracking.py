@@ -19,6 +19,7 @@ from evenflag.runner.store import file_lock, prepare_sqlite_store, sqlite_path
 TAG = "evenflag."
 MAX_PARAMS, MAX_METRICS, MAX_TAGS = 100, 1000, 100  # MLflow's per-batch limits
 _KEY_OK = re.compile(r"[^\w\-. /:]")
+DATABASE_SCHEMES = ("postgresql", "mysql", "mssql")  # SQLAlchemy URIs MLflow accepts as stores
 
 
 def metric_key(key: str) -> str:
@@ -87,9 +88,11 @@ class Tracker:
         elif self.uri.startswith(("http://", "https://")):
             self.artifact_root = artifact_root
             check_server(self.uri, timeout_seconds)
+        elif self.uri.split("://", 1)[0].split("+", 1)[0] in DATABASE_SCHEMES:
+            self.artifact_root = artifact_root  # a database MLflow opens directly; claims use the server rule
         else:
             raise ConfigError(f"tracking.uri '{self.uri}' is not supported; use sqlite:///path/to/mlflow.db, "
-                              "http://host:port or https://host:port")
+                              "http://host:port, https://host:port or a database URI (postgresql://...)")
         from mlflow.tracking import MlflowClient
 
         self.client = MlflowClient(tracking_uri=self.uri)
