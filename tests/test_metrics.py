@@ -318,3 +318,24 @@ def test_binned_bootstrap_agrees_with_exact_bootstrap(monkeypatch):
         width = exact[f"{key}.ci_high"] - exact[f"{key}.ci_low"]
         for end in ("ci_low", "ci_high"):
             assert abs(binned[f"{key}.{end}"] - exact[f"{key}.{end}"]) < 0.3 * width, key
+
+
+def test_equal_rates_do_not_name_a_group_against_itself():
+    flag, group = _flags_from_counts({"a": (5, 50), "b": (5, 50)})
+    notes = evaluate(["flag_fairness"], np.zeros(len(flag), int), None, flag, group).notes
+    assert notes["flag_rate_ratio.pair"] == "all groups equal"
+
+
+def test_score_distance_is_at_most_one_half_and_bounds_the_shift():
+    # Fully separated groups of unequal size: every score of b above every score of a.
+    score = np.r_[np.arange(70.0), 100 + np.arange(30.0)]
+    group = np.array(["a"] * 70 + ["b"] * 30)
+    v = evaluate(["score_fairness"], np.zeros(100, int), score, None, group).values
+    assert v["score_distance"] == pytest.approx(0.5)
+    rng = np.random.default_rng(4)
+    for _ in range(20):  # |mean difference| <= Wasserstein-1 on the same pooled scale
+        score, group = rng.normal(size=300), rng.choice(["a", "b", "c"], 300)
+        v = evaluate(["score_fairness"], np.zeros(300, int), score + (group == "b"), None, group).values
+        shifts = [value for key, value in v.items() if key.startswith("score_shift/") and "." not in key]
+        assert len(shifts) == 2  # every group but the reference (the largest)
+        assert all(abs(shift) <= v["score_distance"] + 1e-12 for shift in shifts)
