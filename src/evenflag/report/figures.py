@@ -87,7 +87,7 @@ def tradeoff_figure(table: pd.DataFrame, out: Path, detection: str = "auroc", fa
         front = pareto_front(x, y)
         if len(front):
             ax.plot(x[front], y[front], "-", color="0.1", linewidth=1.4, marker="D", markersize=5, label="Pareto front")
-        ax.axhline(FOUR_FIFTHS, linestyle="--", color="0.3", linewidth=0.9, label="four-fifths line (0.8)")
+        ax.axhline(FOUR_FIFTHS, linestyle="--", color="0.3", linewidth=0.9, label=f"four-fifths line ({FOUR_FIFTHS:g})")
         ax.set_ylim(0, 1.04)
         ax.set_title(dataset)
         ax.set_xlabel(detection.replace("_", " "))
@@ -139,7 +139,7 @@ def flag_rate_figure(runs: pd.DataFrame, out: Path):
             if np.isfinite(np.nanmax(means)) if len(means) else False:
                 line = FOUR_FIFTHS * np.nanmax(means)
                 ax.plot([d_index - 0.45, d_index + 0.45], [line, line], "--", color="0.1", linewidth=1,
-                        label="0.8 x highest rate" if d_index == 0 else None)
+                        label=f"{FOUR_FIFTHS:g} x highest rate" if d_index == 0 else None)
         ax.set_xticks(range(len(detectors)))
         ax.set_xticklabels([_stacked(d) for d in detectors], fontsize=7)
         ax.set_ylabel("flag rate")
