@@ -113,7 +113,8 @@ def test_eeoc_four_fifths_worked_example():
 
 def test_two_proportion_z_and_fisher_against_scipy():
     # 48/80 vs 12/40 flagged: pooled z about 3.098, two-sided p about 0.00195; Fisher
-    # two-sided p about 0.00341 (issue check values, cross-checked with scipy.stats below).
+    # two-sided p about 0.00341 (regression values, cross-checked against the reference
+    # library scipy.stats below).
     z, p = two_proportion_z(48, 80, 12, 40)
     assert z == pytest.approx(3.098, abs=5e-4)
     assert p == pytest.approx(0.00195, abs=1e-5)
