@@ -46,9 +46,13 @@ def _wait_for(condition, timeout, step=0.05):
 def test_kill_during_store_creation_never_breaks_the_store(tmp_path):
     # kill -9 of the whole launch at 10 moments spread over the creation of a new
     # store (from the moment its folder appears), then the same launch again.
+    # Two trials at a time (one per core), each in its own folder.
+    from concurrent.futures import ThreadPoolExecutor
+
     sweep = ["run", "-m", *SMALL, "study=kc", "seed=0"]
-    for trial, delay in enumerate(np.linspace(0.0, 2.7, 10)):
-        cwd = tmp_path / f"trial{trial}"
+
+    def trial(number, delay):
+        cwd = tmp_path / f"trial{number}"
         cwd.mkdir()
         process = _start(cwd, *sweep)
         folder = cwd / "outputs" / "tracking"
@@ -61,6 +65,10 @@ def test_kill_during_store_creation_never_breaks_the_store(tmp_path):
         assert len(again.stderr.strip().splitlines()) <= 1, again.stderr  # at most one warning line
         assert _status_by_cell(cwd, "kc") == {"0": ["FINISHED"]}, delay
         assert not list(folder.glob(".mlflow.db.creating-*"))
+
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        for done in [pool.submit(trial, i, d) for i, d in enumerate(np.linspace(0.0, 2.7, 10))]:
+            done.result()
 
 
 @pytest.mark.slow
