@@ -18,7 +18,7 @@ def test_adult_rows_and_rate():
     assert ds.n_rows == 48_842
     # UCI Adult: about 23.93% earn >50K (value from memory, so a small tolerance).
     assert ds.base_rate == pytest.approx(0.2393, abs=0.001)
-    # Group counts as recorded in the project's datasets.md from loading the pinned file.
+    # Group counts: regression values counted in the pinned file (not a documented figure).
     assert ds.group_counts() == {"Female": 16_192, "Male": 32_650}
 
 
@@ -27,7 +27,7 @@ def test_german_credit_rows_and_classes():
     # UCI Statlog German Credit description: 1,000 instances, 700 good / 300 bad.
     assert ds.n_rows == 1000
     assert int(ds.label.sum()) == 300
-    # datasets.md: sex from personal_status gives male 690 / female 310.
+    # Sex from personal_status, male 690 / female 310: regression values counted in the pinned file.
     assert ds.group_counts() == {"female": 310, "male": 690}
 
 
@@ -35,7 +35,7 @@ def test_arrests_rows():
     ds = load_dataset("arrests")
     # R package carData documentation, data set Arrests: 5,226 rows.
     assert ds.n_rows == 5226
-    # datasets.md: colour White 3,938 / Black 1,288; 17.1% not released.
+    # Colour White 3,938 / Black 1,288 and 17.1% not released: regression values counted in the pinned file.
     assert ds.group_counts() == {"Black": 1288, "White": 3938}
     assert ds.base_rate == pytest.approx(0.171, abs=0.0005)
 
@@ -44,7 +44,7 @@ def test_rossi_rows():
     ds = load_dataset("rossi")
     # Rossi, Berk and Lenihan (1980) as documented in carData Rossi: 432 released prisoners.
     assert ds.n_rows == 432
-    # datasets.md: race 1 = black 379 / 53; 26.4% re-arrested.
+    # race 1 (black) 379 / 0: 53 and 26.4% re-arrested: regression values counted in the pinned file.
     assert ds.group_counts() == {"0": 53, "1": 379}
     assert ds.base_rate == pytest.approx(0.264, abs=0.0005)
 
@@ -55,7 +55,7 @@ def test_resume_rows_and_design():
     # African-American-sounding names.
     assert ds.n_rows == 4870
     assert ds.group_counts() == {"afam": 2435, "cauc": 2435}
-    # datasets.md: callback rate 8.05%.
+    # Callback rate 8.05%: regression value counted in the pinned file.
     assert ds.base_rate == pytest.approx(0.0805, abs=0.0005)
     assert "name" not in ds.features.columns
 
@@ -64,7 +64,7 @@ def test_hmda_rows():
     ds = load_dataset("hmda")
     # Munnell et al. (1996), AER documentation of HMDA: 2,380 observations.
     assert ds.n_rows == 2380
-    # datasets.md: afam yes 339 / no 2,041; denial rate 12.0%.
+    # afam yes 339 / no 2,041 and denial rate 12.0%: regression values counted in the pinned file.
     assert ds.group_counts() == {"no": 2041, "yes": 339}
     assert ds.base_rate == pytest.approx(0.120, abs=0.0005)
 
