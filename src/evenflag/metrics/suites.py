@@ -150,7 +150,7 @@ def evaluate(families, label, score, flag, group, embedding=None, n_bootstrap: i
 
     if intervals:
         methods = interval_methods(values, inputs, counts)
-        values.update(closed_form_intervals(methods, values, inputs, counts, level))
+        values.update(closed_form_intervals(methods, counts, level))
         wanted = [k for k, m in methods.items() if m == "bootstrap"]
         if wanted and batched:
             values.update(_bootstrap_intervals(inputs, batched, values, wanted, n_bootstrap, seed, level, resample))
@@ -176,7 +176,7 @@ def interval_methods(values: dict, inputs: MetricInput, counts) -> dict[str, str
     return methods
 
 
-def closed_form_intervals(methods: dict, values: dict, inputs: MetricInput, counts, level: float) -> dict[str, float]:
+def closed_form_intervals(methods: dict, counts, level: float) -> dict[str, float]:
     out = {}
     delong = _delong_parts(counts) if "delong" in methods.values() else {}
     for key, method in methods.items():

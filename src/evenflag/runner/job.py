@@ -63,9 +63,8 @@ def run_job(cfg: DictConfig) -> str:
         if run_id is None:
             ledger.record({"status": "skipped", "name": name, "summary": busy})
             return "skipped"
-        claimed = run_id
-        beat = Heartbeat(lambda: tracker.heartbeat(claimed),
-                         on_orphaned=lambda: tracker.kill(claimed, "its launcher died (the parent process was killed)"))
+        beat = Heartbeat(lambda: tracker.heartbeat(run_id),
+                         on_orphaned=lambda: tracker.kill(run_id, "its launcher died (the parent process was killed)"))
         # Params first, so a run that fails below still says what it was.
         tracker.log(run_id, flatten({k: v for k, v in resolved.items() if k not in ("tracking", "tags")}), {}, {})
         out = execute(cfg)
