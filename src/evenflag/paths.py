@@ -6,10 +6,19 @@ import os
 from pathlib import Path
 
 CONFIG_ENV = "EVENFLAG_CONFIG_DIR"
+_PACKAGE = Path(__file__).resolve().parent
 
 
 def config_dir() -> Path:
-    """``$EVENFLAG_CONFIG_DIR``, else ``configs/`` of the source checkout."""
+    """The folder holding ``config.yaml`` and the config groups.
+
+    ``$EVENFLAG_CONFIG_DIR`` if set; else the copy an installed wheel carries
+    (``evenflag/configs``); else ``configs/`` of the source checkout, which is
+    what an editable install uses and the one place to edit.
+    """
     if os.environ.get(CONFIG_ENV):
         return Path(os.environ[CONFIG_ENV]).resolve()
-    return Path(__file__).resolve().parents[2] / "configs"
+    installed = _PACKAGE / "configs"
+    if (installed / "config.yaml").is_file():
+        return installed
+    return _PACKAGE.parents[1] / "configs"
