@@ -60,7 +60,7 @@ def main():
     E = args.epochs
     print(f"{args.rows:,} rows x 100 features, {E} epochs, torch threads {torch.get_num_threads()}")
     for batch in (256, 1024, 4096):
-        net = dict(hidden=[128, 64], rep_dim=32, batch_size=batch, epochs=E, seed=0)
+        net = dict(hidden=[128, 64], embedding_dim=32, batch_size=batch, epochs=E, seed=0)
         bare = best(lambda: minimal_loop(X, batch, E))
         ours = best(lambda: through_evenflag(lambda: DeepSVDDDetector(**net), X, groups, E))
         line = f"batch {batch:>5}: minimal loop {bare:>9,.0f} samples/s, evenflag deep_svdd {ours:>9,.0f} samples/s = {ours / bare:.2f}x"

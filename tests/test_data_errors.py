@@ -74,7 +74,7 @@ def test_unreadable_parquet(tmp_path):
     path.write_bytes(b"this is not parquet")
     spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
             "anomaly_values": ["fraud"], "group": ["region"]}
-    with pytest.raises(DatasetError, match="could not read .* as parquet"):
+    with pytest.raises(DatasetError, match=r"could not parse parquet data \(.*magic bytes.*\).*read as parquet"):
         load_dataset(spec)
 
 
@@ -130,3 +130,67 @@ def test_cli_prints_one_line_without_traceback(tmp_path, frame):
     assert result.returncode == 2
     assert result.stderr.strip().count("\n") == 0
     assert "Traceback" not in result.stderr and "valid names" in result.stderr
+
+
+# Each rule below is stated in evenflag.data.dataset.check_features; the data
+# are invented for these checks.
+def test_numbers_with_stray_text_are_refused_with_count(tmp_path, frame):
+    frame["amount"] = frame["amount"].round(3).astype(object)
+    frame.loc[:9, "amount"] = "?"
+    with pytest.raises(DatasetError, match=r"column 'amount' holds numbers but also text in 10 row\(s\) \(values: '\?'\); list that text in dataset.na_values"):
+        load_dataset(_claims(tmp_path, frame))
+
+
+def test_stray_text_listed_as_missing_is_filled_with_one_warning(tmp_path, frame, capsys):
+    frame["amount"] = frame["amount"].round(3).astype(object)
+    frame.loc[:9, "amount"] = "?"
+    spec = _claims(tmp_path, frame)
+    spec["na_values"] = ["?"]
+    dataset = load_dataset(spec)
+    assert dataset.features.shape[1] == 1 and dataset.missing_values == {"amount": 10}
+    err = capsys.readouterr().err
+    assert "10 missing value(s) in 1 feature column(s) (amount: 10) are filled" in err and err.count("\n") == 1
+
+
+def test_infinite_numbers_are_refused_with_count(tmp_path, frame):
+    frame.loc[[3, 7, 11], "amount"] = np.inf
+    with pytest.raises(DatasetError, match=r"column 'amount' has 3 infinite value\(s\)"):
+        load_dataset(_claims(tmp_path, frame))
+
+
+def test_duplicated_group_header_is_refused(tmp_path, frame):
+    path = tmp_path / "claims.csv"
+    # pandas renames the second 'region' header to 'region.1' (pandas.read_csv documentation, mangle_dupe_cols)
+    frame[["amount", "region", "region", "outcome"]].to_csv(path, index=False)
+    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
+            "anomaly_values": ["fraud"], "group": ["region"]}
+    with pytest.raises(DatasetError, match=r"feature column 'region.1' repeats group column 'region'.*dataset.drop=\[region.1\]"):
+        load_dataset(spec)
+
+
+def test_directory_as_data_path(tmp_path):
+    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(tmp_path)}, "label": "outcome",
+            "anomaly_values": ["fraud"], "group": ["region"]}
+    with pytest.raises(DatasetError, match=r"is a folder; set source.path to a file in it \(.csv, .csv.gz, .parquet\)"):
+        load_dataset(spec)
+
+
+def test_unsupported_format_names_the_supported_ones(tmp_path, frame):
+    path = tmp_path / "claims.xlsx"
+    path.write_bytes(b"PK\x03\x04 not really a spreadsheet")
+    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
+            "anomaly_values": ["fraud"], "group": ["region"]}
+    with pytest.raises(DatasetError, match=r"cannot tell the format of 'claims.xlsx'.*supported: .csv, .csv.gz, .parquet"):
+        load_dataset(spec)
+
+
+def test_latin1_file_names_the_encoding_option(tmp_path, frame):
+    frame["region"] = np.where(frame["region"] == "north", "Nordm\u00e4rkte", "S\u00fcd")
+    path = tmp_path / "claims.csv"
+    frame.to_csv(path, index=False, encoding="latin-1")
+    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
+            "anomaly_values": ["fraud"], "group": ["region"]}
+    with pytest.raises(DatasetError, match=r"not utf-8 text \(byte 0x[0-9a-f]{2} at position \d+\); set dataset.source.encoding"):
+        load_dataset(spec)
+    spec["source"]["encoding"] = "latin-1"
+    assert sorted(load_dataset(spec).group_counts()) == ["Nordm\u00e4rkte", "S\u00fcd"]

@@ -340,3 +340,29 @@ def test_score_distance_is_at_most_one_half_and_bounds_the_shift():
         shifts = [value for key, value in v.items() if key.startswith("score_shift/") and "." not in key]
         assert len(shifts) == 2  # every group but the reference (the largest)
         assert all(abs(shift) <= v["score_distance"] + 1e-12 for shift in shifts)
+
+
+def test_group_keys_stay_distinct_and_valid_mlflow_keys(tmp_path):
+    """x|y and x-y once both became flag_rate/x-y. Each group keeps its own key,
+    MLflow accepts every key (a real SQLite store; MLflow's documented key
+    characters), and each value is the group's flag rate counted with numpy."""
+    from mlflow.entities import Metric
+    from mlflow.tracking import MlflowClient
+
+    from evenflag.metrics.keys import group_from_key, group_key
+
+    rng = np.random.default_rng(3)
+    groups = np.array(["x|y", "x-y", "x.y", "Süd/Ost"])[rng.integers(0, 4, 2000)]
+    flag = rng.random(2000) < 0.1
+    label = (rng.random(2000) < 0.05).astype(int)
+    values = evaluate(["flag_fairness"], label, rng.random(2000), flag, groups).values
+    for name in ["x|y", "x-y", "x.y", "Süd/Ost"]:
+        key = f"flag_rate/{group_key(name)}"
+        assert values[key] == pytest.approx(flag[groups == name].mean(), abs=1e-12)
+        assert group_from_key(key.split("/", 1)[1]) == name
+    assert len({k for k in values if k.startswith("flag_rate/") and "." not in k.split("/", 1)[1]}) == 4
+    client = MlflowClient(tracking_uri=f"sqlite:///{tmp_path / 'm.db'}")
+    run = client.create_run(client.create_experiment("keys"))
+    client.log_batch(run.info.run_id, metrics=[Metric(k, float(v), 0, 0) for k, v in values.items()
+                                               if np.isfinite(v) and "/" in k])
+    assert set(client.get_run(run.info.run_id).data.metrics) >= {f"flag_rate/{group_key(n)}" for n in ["x|y", "x-y"]}

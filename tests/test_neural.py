@@ -14,7 +14,7 @@ from evenflag.errors import DetectorError
 from evenflag.metrics.suites import evaluate
 from evenflag.thresholds import ThresholdSpec, flag_scores
 
-SMALL = dict(hidden=[32], rep_dim=8, epochs=15, batch_size=128)
+SMALL = dict(hidden=[32], embedding_dim=8, epochs=15, batch_size=128)
 
 
 def _synthetic(shift, rows=4000, seed=0, anomaly_distance=5.0):
@@ -78,11 +78,11 @@ def test_well_separated_data_is_detected(make):
 
 @pytest.mark.parametrize("cls", [AutoencoderDetector, DeepSVDDDetector])
 def test_neural_detectors_conform(cls):
-    assert_conforms(cls, hidden=[16], rep_dim=4, epochs=3)
+    assert_conforms(cls, hidden=[16], embedding_dim=4, epochs=3)
 
 
 def test_adversarial_conforms():
-    assert_conforms(AdversarialDetector, base={"name": "deep_svdd", "hidden": [16], "rep_dim": 4, "epochs": 3})
+    assert_conforms(AdversarialDetector, base={"name": "deep_svdd", "hidden": [16], "embedding_dim": 4, "epochs": 3})
 
 
 # ---------------------------------------------------------------- the adversary's effect
@@ -119,7 +119,7 @@ def test_multi_valued_and_intersectional_groups(mode):
     sex = rng.choice(["female", "male"], 600)
     region = rng.choice(["north", "south", "east"], 600, p=[0.5, 0.3, 0.2])
     intersectional = np.char.add(np.char.add(sex, "|"), region)
-    det = AdversarialDetector(base={"name": "autoencoder", "hidden": [16], "rep_dim": 4, "epochs": 3},
+    det = AdversarialDetector(base={"name": "autoencoder", "hidden": [16], "embedding_dim": 4, "epochs": 3},
                               weight=0.5, mode=mode, seed=0).fit(X, intersectional)
     values, counts = np.unique(intersectional, return_counts=True)
     assert len(values) == 6
@@ -135,7 +135,7 @@ def test_adversary_trains_when_the_last_batch_has_one_row(mode):
     rng = np.random.default_rng(0)
     X = rng.normal(size=(257, 5)).astype(np.float32)
     group = rng.choice(["a", "b"], 257)
-    det = AdversarialDetector(base={"name": "deep_svdd", "hidden": [8], "rep_dim": 4, "epochs": 2, "batch_size": 128},
+    det = AdversarialDetector(base={"name": "deep_svdd", "hidden": [8], "embedding_dim": 4, "epochs": 2, "batch_size": 128},
                               weight=1.0, mode=mode, seed=0).fit(X, group)
     assert np.isfinite(det.anomaly_score(X)).all()
 
@@ -151,7 +151,7 @@ def test_warmup_and_ramp_of_the_weight():
 def test_non_finite_loss_stops_with_a_clear_reason():
     X = np.random.default_rng(0).normal(size=(300, 4)).astype(np.float32) * 1e30
     with pytest.raises(DetectorError, match="training loss became"):
-        AutoencoderDetector(hidden=[8], rep_dim=2, epochs=2).fit(X)
+        AutoencoderDetector(hidden=[8], embedding_dim=2, epochs=2).fit(X)
 
 
 def test_collapsed_embedding_is_refused():

@@ -30,7 +30,7 @@ def store(tmp_path_factory):
     assert sweep.returncode == 1 and "16 done, 0 skipped (already finished), 8 failed" in sweep.stdout, sweep.stdout[-3000:]
     weights = evenflag(cwd, "run", "-m", "dataset=synthetic_claims", "dataset.source.rows=800", "metrics=quick",
                        "study=rep_weights", "seed=0,1", "detector=adversarial", "detector.weight=0,1",
-                       "detector.base.epochs=2", "detector.base.hidden=[8]", "detector.base.rep_dim=4")
+                       "detector.base.epochs=2", "detector.base.hidden=[8]", "detector.base.embedding_dim=4")
     assert weights.returncode == 0, weights.stdout[-3000:] + weights.stderr[-3000:]
     report = evenflag(cwd, "report", "--study", "rep", "--memo", "--html", "--out", str(cwd / "report"))
     assert report.returncode == 0, report.stderr
@@ -245,3 +245,57 @@ def test_cells_never_pool_configurations_and_count_a_seed_once(store):
     assert table["settings"].nunique() == 4
     runs = [r for r in runs_of(client_for(cwd), "cells") if r.info.status == "FINISHED"]
     assert len(runs) == 9  # the store keeps the superseded run; the report counts it once
+
+
+# ---------------------------------------------------------------- report inputs
+def _one_error_line(result, *expected):
+    lines = result.stderr.strip().splitlines()
+    assert result.returncode == 2 and len(lines) == 1, result.stderr
+    for text in expected:
+        assert text in lines[0], lines[0]
+
+
+def test_detector_has_one_name_and_report_inputs_are_checked(store):
+    cwd, _ = store
+    sweep = evenflag(cwd, "run", "-m", "dataset=synthetic_claims", "dataset.source.rows=800", "metrics=quick",
+                     "study=names", "detector=local_outlier_factor,isolation_forest")
+    assert sweep.returncode == 0, sweep.stdout[-2000:] + sweep.stderr[-2000:]
+    assert "synthetic_claims local_outlier_factor seed=0" in sweep.stdout
+    runs = runs_of(client_for(cwd), "names")
+    assert sorted(r.data.tags["evenflag.detector"] for r in runs) == ["isolation_forest", "local_outlier_factor"]
+
+    # The study's main report, then a filtered one: the filter goes to its own folder.
+    main = evenflag(cwd, "report", "--study", "names")
+    assert main.returncode == 0, main.stderr
+    main_table = cwd / "outputs" / "reports" / "names" / "table.md"
+    before = main_table.read_text()
+    assert "local_outlier_factor" in before and "LocalOutlierFactor" not in before
+    lof_id = next(r.info.run_id for r in runs if r.data.tags["evenflag.detector"] == "local_outlier_factor")
+    subset = evenflag(cwd, "report", "--study", "names", "--where", "detector.name=local_outlier_factor",
+                      "--run-id", lof_id[:8])
+    assert subset.returncode == 0, subset.stderr
+    assert main_table.read_text() == before
+    (folder,) = (cwd / "outputs" / "reports" / "names").glob("subset-*")
+    table = (folder / "table.md").read_text()
+    assert "local_outlier_factor" in table and "isolation_forest" not in table
+    assert (folder / "score_ecdf.png").exists()  # the 8-character id the runner prints picks the run
+
+    _one_error_line(evenflag(cwd, "report", "--study", "names", "--where", "nosuchkey=1"),
+                    "--where nosuchkey: no run", "has a param or tag of that name", "detector.name")
+    _one_error_line(evenflag(cwd, "report", "--study", "names", "--metrics", "auroc,flag_rate_ration"),
+                    "--metrics: no selected run has the key 'flag_rate_ration'", "flag_rate_ratio")
+    _one_error_line(evenflag(cwd, "report", "--study", "names", "--run-id", "0123abcd"),
+                    "--run-id 0123abcd: no selected run has that id")
+
+
+def test_datasets_clear_refuses_an_unknown_name(tmp_path):
+    _one_error_line(evenflag(tmp_path, "datasets", "clear", "nope"), "unknown dataset 'nope'; valid names: adult")
+
+
+def test_datasets_show_takes_overrides_and_config_dir(tmp_path):
+    shown = evenflag(tmp_path, "datasets", "show", "german_credit", "--config-dir", CONFIGS, "protocol.test_fraction=0.5")
+    assert shown.returncode == 0, shown.stderr
+    # german_credit has 1,000 rows (UCI Statlog German Credit documentation): half of them are test rows.
+    assert "test 500 rows" in shown.stdout
+    _one_error_line(evenflag(tmp_path, "datasets", "show", "german_credit", "protocol.test_fraction=2"),
+                    "protocol.test_fraction must be between 0 and 1")

@@ -186,6 +186,20 @@ def test_sweep_to_an_mlflow_server_on_loopback(tmp_path):
     (["threshold.policy=top"], "threshold.policy 'top' is unknown"),
     (["-m", "seed=0,1", "metrics=quik"], "unknown metrics 'quik'; valid names: default, quick"),
     (["seed=0,1"], "add -m"),
+    # Values checked at launch, before any job trains (ranges from the settings' own docs).
+    (["threshold.fraction=1.5"], "threshold.fraction must be between 0 and 1 (exclusive), got 1.5"),
+    (["detector=deep_svdd", "threshold.fraction=0"], "threshold.fraction must be between 0 and 1"),
+    (["protocol.test_fraction=1"], "protocol.test_fraction must be between 0 and 1 (exclusive)"),
+    (["protocol.test_anomaly_rate=2"], "protocol.test_anomaly_rate must be between 0 and 1 (exclusive) or null"),
+    (["dataset.small_groups=maybe"], "dataset.small_groups must be 'merge' or 'refuse', got 'maybe'"),
+    (["threads=-1"], "threads=-1 is invalid; use a positive number"),
+    # scikit-learn's own parameter constraints (IsolationForest: n_estimators an int >= 1)
+    (["detector.n_estimators=abc"], "The 'n_estimators' parameter of IsolationForest must be an int in the range [1, inf). Got 'abc'"),
+    (["-m", "detector.n_estimators=10,-5"], "detector.n_estimators=-5: sklearn.ensemble.IsolationForest: The 'n_estimators' parameter"),
+    (["detector=deep_svdd", "detector.epochs=0"], "detector.epochs must be a whole number of at least 1, got 0"),
+    (["detector=deep_svdd", "detector.foo=1"],
+     "DeepSVDDDetector accepts: objective, nu, eps, warmup_epochs, pretrain_epochs, hidden, embedding_dim, activation, "
+     "dropout, epochs, batch_size, lr"),
 ])
 def test_bad_overrides_give_one_line(tmp_path, args, expected):
     result = evenflag(tmp_path, "run", *args)
@@ -196,12 +210,12 @@ def test_bad_overrides_give_one_line(tmp_path, args, expected):
 
 
 def test_neural_detectors_and_mitigations_run_in_a_sweep(tmp_path):
-    small_net = ["detector.epochs=3", "detector.hidden=[16]", "detector.rep_dim=4"]
+    small_net = ["detector.epochs=3", "detector.hidden=[16]", "detector.embedding_dim=4"]
     result = evenflag(tmp_path, "run", "-m", *SMALL, "study=neural", "detector=deep_svdd", *small_net,
                       "mitigation=none,group_balanced,group_thresholds")
     assert result.returncode == 0, result.stderr + result.stdout
     adversarial = evenflag(tmp_path, "run", *SMALL, "study=neural", "detector=adversarial", "detector.weight=0.5",
-                           "detector.base.epochs=3", "detector.base.hidden=[16]", "detector.base.rep_dim=4")
+                           "detector.base.epochs=3", "detector.base.hidden=[16]", "detector.base.embedding_dim=4")
     assert adversarial.returncode == 0, adversarial.stderr + adversarial.stdout
     client = client_for(tmp_path)
     runs = runs_of(client, "neural")

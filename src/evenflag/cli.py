@@ -13,6 +13,7 @@ check-detector MOD:CLS   run the detector conformance checks on a plugin
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import sys
 import warnings
@@ -84,7 +85,11 @@ def cmd_datasets_fetch(args) -> int:
 
 def cmd_datasets_clear(args) -> int:
     from evenflag.data import cache
+    from evenflag.data.registry import available_datasets
 
+    if args.name and args.name not in available_datasets():
+        raise EvenflagError(f"unknown dataset '{args.name}'; valid names: {', '.join(available_datasets())} "
+                            "(or no name to clear every cached table)")
     removed = cache.clear(args.name)
     print(f"removed {len(removed)} cached file(s) from {cache.cache_root() / 'parsed'}")
     return 0
@@ -96,15 +101,14 @@ def cmd_datasets_show(args) -> int:
 
     from evenflag.data.preprocessing import prepare
     from evenflag.data.protocol import ProtocolSpec, make_split
-    from evenflag.data.registry import load_dataset
-    from evenflag.paths import config_dir
+    from evenflag.data.registry import load_dataset, to_spec
+    from evenflag.runner.app import compose_run_config
 
-    ds = load_dataset(args.name)
-    protocol_file = config_dir() / "protocol" / f"{args.protocol}.yaml"
-    if not protocol_file.exists():
-        names = sorted(p.stem for p in protocol_file.parent.glob("*.yaml"))
-        raise EvenflagError(f"unknown protocol '{args.protocol}'; valid names: {', '.join(names)}")
-    spec = OmegaConf.to_object(OmegaConf.merge(OmegaConf.structured(ProtocolSpec), OmegaConf.load(protocol_file)))
+    # The same composition as `evenflag run`: overrides and --config-dir work alike.
+    cfg = compose_run_config([f"dataset={args.name}", f"protocol={args.protocol}", f"seed={args.seed}",
+                              *args.overrides], args.config_dir)
+    ds = load_dataset(to_spec(OmegaConf.to_container(cfg.dataset, resolve=True)))
+    spec = ProtocolSpec(**OmegaConf.to_container(cfg.protocol, resolve=True))
     split = make_split(ds, spec, seed=args.seed)
     data = prepare(ds, split, spec.group_as_feature)
     print(f"{ds.name}: {ds.n_rows:,} rows, {ds.features.shape[1]} raw features -> {data.X_train.shape[1]} encoded")
@@ -169,10 +173,16 @@ def cmd_report(args) -> int:
     else:
         raise EvenflagError(f"--tracking-uri '{uri}' is not supported; use sqlite:///path/to/mlflow.db or http://host:port")
     out = Path(args.out) if args.out else Path("outputs") / "reports" / "+".join(args.study)
+    if not args.out and (where or args.metrics):
+        # A filtered or re-chosen table must not overwrite the study's main report.
+        import hashlib
+
+        selection = json.dumps({"where": where, "metrics": args.metrics}, sort_keys=True)
+        out = out / f"subset-{hashlib.sha256(selection.encode()).hexdigest()[:8]}"
     request = ReportRequest(uri=uri, studies=args.study, where=where,
                             metrics=args.metrics.split(",") if args.metrics else list(DEFAULT_METRICS),
                             out=out, figures=not args.no_figures, memo=args.memo, html=args.html, run_id=args.run_id,
-                            note=_read_note(args.note))
+                            note=_read_note(args.note), metrics_given=bool(args.metrics))
     written = build_report(request)
     print(written.pop("_markdown"))
     print("written: " + ", ".join(str(p) for p in written.values()))
@@ -196,6 +206,9 @@ def build_parser() -> argparse.ArgumentParser:
     show.add_argument("name")
     show.add_argument("--protocol", default="one_class")
     show.add_argument("--seed", type=int, default=0)
+    show.add_argument("--config-dir", action="append", default=[], metavar="DIR",
+                      help="another folder of config groups, as for evenflag run")
+    show.add_argument("overrides", nargs="*", help="config overrides as for evenflag run, e.g. dataset.min_group_size=50")
     show.set_defaults(func=cmd_datasets_show)
 
     run = sub.add_parser("run", help="one run, or a sweep with -m; arguments are Hydra overrides", add_help=False)
@@ -238,7 +251,14 @@ def main(argv: list[str] | None = None) -> int:
             from evenflag.runner.app import launch
 
             return launch(argv[1:])
-        args = build_parser().parse_args(argv)
+        parser = build_parser()
+        # Overrides may come before or after options (datasets show NAME --config-dir D key=value).
+        args, extra = parser.parse_known_args(argv)
+        if extra:
+            if isinstance(getattr(args, "overrides", None), list) and not any(e.startswith("-") for e in extra):
+                args.overrides += extra
+            else:
+                parser.error(f"unrecognized arguments: {' '.join(extra)}")
         return args.func(args)
     except EvenflagError as exc:
         print(f"evenflag: error: {exc}", file=sys.stderr)

@@ -45,6 +45,8 @@ class Dataset:
     merged_groups : list of str
         Group values folded into ``other`` because they were below
         ``min_group_size``.
+    missing_values : dict
+        Missing cells per feature column (filled when the data are prepared).
     """
 
     name: str
@@ -61,6 +63,7 @@ class Dataset:
     anomaly_values: tuple[str, ...] = ()
     merged_groups: list[str] = field(default_factory=list)
     table_sha256: str = ""   # content hash of the parsed table (set by load_dataset)
+    missing_values: dict[str, int] = field(default_factory=dict)  # missing cells per feature column
 
     @property
     def n_rows(self) -> int:
@@ -209,6 +212,7 @@ def build_dataset(
     features = frame.drop(columns=to_drop).reset_index(drop=True)
     if features.shape[1] == 0:
         raise DatasetError(f"dataset '{name}': no feature columns are left after removing label, group and dropped columns")
+    missing = check_features(features, protected.reset_index(drop=True), name)
 
     return Dataset(
         name=name,
@@ -224,7 +228,76 @@ def build_dataset(
         label_column=label_column,
         anomaly_values=tuple(sorted(wanted)),
         merged_groups=merged,
+        missing_values=missing,
     )
+
+
+# A text column is taken for a numeric column with stray text when at least
+# this share of its non-missing cells read as numbers (common practice, no source).
+NUMERIC_SHARE = 0.9
+
+
+def check_features(features: pd.DataFrame, protected: pd.DataFrame, name: str) -> dict[str, int]:
+    """Refuse feature columns that would mislead a detector; report missing cells.
+
+    Rules, each with the count it found:
+
+    * a text column whose non-missing cells are at least 90% numbers but not
+      all (``12.5``, ``n/a``, ``7``) is refused: one-hot encoding it would turn
+      every amount into its own feature. List the stray text in
+      ``dataset.na_values`` or drop the column.
+    * infinite numbers are refused (no scaling is defined for them).
+    * a feature column equal to a group column (a duplicated header such as
+      ``region.1``) is refused: it would hand the detector the group.
+    * missing cells are allowed and filled when the data are prepared
+      (numbers with the training median, text as its own category); the
+      counts per column are returned and printed as one warning line.
+
+    >>> import pandas as pd
+    >>> feats = pd.DataFrame({"amount": [str(v) for v in range(19)] + ["n/a"]})
+    >>> check_features(feats, pd.DataFrame({"region": ["a", "b"] * 10}), "toy")
+    Traceback (most recent call last):
+    ...
+    evenflag.errors.DatasetError: dataset 'toy': column 'amount' holds numbers but also text in 1 row(s) (values: 'n/a'); list that text in dataset.na_values to read it as missing, or drop the column (dataset.drop)
+    """
+    for column in features.columns:
+        series = features[column]
+        if pd.api.types.is_numeric_dtype(series) and not pd.api.types.is_bool_dtype(series):
+            values = series.to_numpy(dtype=np.float64, na_value=np.nan)
+            n_inf = int(np.isinf(values).sum())
+            if n_inf:
+                raise DatasetError(f"dataset '{name}': column '{column}' has {n_inf} infinite value(s); replace them "
+                                   "in the data, list their text (e.g. inf) in dataset.na_values to read them as "
+                                   "missing, or drop the column (dataset.drop)")
+            continue
+        text = series.dropna().astype(str).str.strip()
+        if text.nunique() < 2:
+            continue
+        numeric = pd.to_numeric(text, errors="coerce").notna()
+        if NUMERIC_SHARE <= numeric.mean() < 1.0:
+            stray = sorted(text[~numeric].unique())
+            rows = int((~numeric).sum())
+            shown = ", ".join(repr(v) for v in stray[:5]) + (" ..." if len(stray) > 5 else "")
+            raise DatasetError(f"dataset '{name}': column '{column}' holds numbers but also text in {rows} row(s) "
+                               f"(values: {shown}); list that text in dataset.na_values to read it as missing, "
+                               "or drop the column (dataset.drop)")
+    for group_column in protected.columns:
+        group_text = protected[group_column].astype("string")
+        for column in features.columns:
+            if features[column].nunique(dropna=False) == group_text.nunique(dropna=False) and \
+                    features[column].astype("string").equals(group_text.rename(column)):
+                raise DatasetError(f"dataset '{name}': feature column '{column}' repeats group column "
+                                   f"'{group_column}' (a duplicated header?) and would give the detector the group; "
+                                   f"remove it or drop it with dataset.drop=[{column}]")
+    counts = features.isna().sum()
+    missing = {str(c): int(n) for c, n in counts.items() if n}
+    if missing:
+        from evenflag.errors import warn_line
+
+        detail = ", ".join(f"{c}: {n}" for c, n in list(missing.items())[:6]) + (" ..." if len(missing) > 6 else "")
+        warn_line(f"dataset '{name}': {sum(missing.values())} missing value(s) in {len(missing)} feature column(s) "
+                  f"({detail}) are filled (numbers: the training median; text: a '(missing)' category)")
+    return missing
 
 
 def _apply_min_group_size(group_text: pd.Series, name: str, min_size: int, policy: str):

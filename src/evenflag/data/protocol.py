@@ -63,7 +63,7 @@ def make_split(dataset: Dataset, spec: ProtocolSpec, seed: int) -> Split:
     >>> len(set(split.train) & set(split.test))
     0
     """
-    _validate(spec)
+    check_spec(spec)
     rng = np.random.default_rng(seed)
     label = dataset.label
     group_codes = dataset.group.cat.codes.to_numpy()
@@ -173,7 +173,8 @@ def hold_out(group: np.ndarray, fraction: float, seed: int) -> np.ndarray:
     return mask
 
 
-def _validate(spec: ProtocolSpec) -> None:
+def check_spec(spec: ProtocolSpec) -> None:
+    """Refuse values out of range, before any work."""
     if spec.kind not in PROTOCOL_KINDS:
         raise ProtocolError(f"protocol.kind '{spec.kind}' is unknown; use one of {list(PROTOCOL_KINDS)}")
     if not 0.0 < spec.test_fraction < 1.0:

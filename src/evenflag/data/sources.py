@@ -7,7 +7,6 @@ Turning the raw table into a :class:`Dataset` is not their job.
 
 from __future__ import annotations
 
-import importlib
 import io
 import os
 import re
@@ -28,13 +27,14 @@ BUNDLED_DIR = Path(__file__).parent / "files"
 
 
 # ---------------------------------------------------------------- parsing
-def parse_bytes(data: bytes, fmt: str, name: str, na_values=()) -> pd.DataFrame:
+def parse_bytes(data: bytes, fmt: str, name: str, na_values=(), encoding: str = "utf-8") -> pd.DataFrame:
     """Parse raw bytes of a known format. Only call after the sha256 matched."""
     na = list(na_values) or None
     try:
         if fmt in ("csv", "csv.gz"):
             compression = "gzip" if fmt == "csv.gz" else None
-            return pd.read_csv(io.BytesIO(data), compression=compression, na_values=na, skipinitialspace=True)
+            return pd.read_csv(io.BytesIO(data), compression=compression, na_values=na, skipinitialspace=True,
+                               encoding=encoding)
         if fmt == "parquet":
             return pd.read_parquet(io.BytesIO(data))
         if fmt == "arff":
@@ -49,8 +49,16 @@ def parse_bytes(data: bytes, fmt: str, name: str, na_values=()) -> pd.DataFrame:
         if fmt == "pickle_xz":
             # Safe only because the caller verified the pinned sha256 first.
             return pd.read_pickle(io.BytesIO(data), compression="xz")
-    except (ValueError, OSError, EOFError, UnicodeDecodeError) as exc:
-        raise DatasetError(f"dataset '{name}': could not parse {fmt} data ({exc}); check the file") from exc
+    except UnicodeDecodeError as exc:
+        raise DatasetError(f"dataset '{name}': the {fmt} data is not {exc.encoding} text (byte "
+                           f"0x{exc.object[exc.start]:02x} at position {exc.start}); set "
+                           "dataset.source.encoding to the file's encoding, e.g. latin-1 or cp1252") from exc
+    except LookupError as exc:
+        raise DatasetError(f"dataset '{name}': unknown text encoding '{encoding}'; use a Python codec name such as "
+                           "utf-8, latin-1 or cp1252 for dataset.source.encoding") from exc
+    except (ValueError, OSError, EOFError) as exc:
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise DatasetError(f"dataset '{name}': could not parse {fmt} data ({reason}); check the file") from exc
     raise DatasetError(f"dataset '{name}': unknown format '{fmt}'; use one of csv, csv.gz, parquet, arff, pickle_xz")
 
 
@@ -151,24 +159,37 @@ def is_cached(spec: SourceSpec, name: str) -> bool:
 
 
 # ---------------------------------------------------------------- file
+FILE_FORMATS = {"csv": ".csv", "csv.gz": ".csv.gz", "parquet": ".parquet"}  # format -> file name ending
+
+
 def read_file(spec: SourceSpec, name: str, na_values=()):
     """The user's own CSV or Parquet file."""
     if not spec.path:
         raise DatasetError(f"dataset '{name}': source.path is required for kind 'file' (a .csv or .parquet file)")
     path = Path(spec.path).expanduser()
+    if path.is_dir():
+        raise DatasetError(f"dataset '{name}': '{path}' is a folder; set source.path to a file in it "
+                           f"({', '.join(FILE_FORMATS.values())})")
     if not path.is_file():
         raise DatasetError(f"dataset '{name}': file '{path}' does not exist; check source.path")
-    data = path.read_bytes()
-    if not data:
-        raise DatasetError(f"dataset '{name}': file '{path}' is empty")
     fmt = spec.format
     if fmt == "auto":
         lowered = path.name.lower()
-        fmt = "parquet" if lowered.endswith(".parquet") else "csv.gz" if lowered.endswith(".csv.gz") else "csv"
+        fmt = next((f for f, ending in FILE_FORMATS.items() if lowered.endswith(ending)), None)
+        if fmt is None:
+            raise DatasetError(f"dataset '{name}': cannot tell the format of '{path.name}' from its name; supported: "
+                               f"{', '.join(FILE_FORMATS.values())} (or set source.format to one of "
+                               f"{', '.join(FILE_FORMATS)} if the name misleads)")
+    elif fmt not in FILE_FORMATS:
+        raise DatasetError(f"dataset '{name}': source.format '{fmt}' is not supported for files; use one of "
+                           f"{', '.join(FILE_FORMATS)} or auto")
+    data = path.read_bytes()
+    if not data:
+        raise DatasetError(f"dataset '{name}': file '{path}' is empty")
     try:
-        frame = parse_bytes(data, fmt, name, na_values)
+        frame = parse_bytes(data, fmt, name, na_values, encoding=spec.encoding)
     except DatasetError as exc:
-        raise DatasetError(f"dataset '{name}': could not read '{path}' as {fmt}; check the file and source.format") from exc
+        raise DatasetError(f"{exc} ('{path}' read as {fmt}; set source.format if that is wrong)") from exc
     if frame.shape[0] == 0:
         raise DatasetError(f"dataset '{name}': file '{path}' has a header but no rows")
     return frame, cache.sha256_bytes(data), f"file:{path}"
@@ -265,7 +286,9 @@ def reader_for(kind: str, name: str):
     if ":" in kind:
         module_name, _, function_name = kind.partition(":")
         try:
-            return getattr(importlib.import_module(module_name), function_name)
+            from evenflag.plugins import import_module
+
+            return getattr(import_module(module_name), function_name)
         except (ImportError, AttributeError) as exc:
             raise DatasetError(f"dataset '{name}': source kind '{kind}' could not be imported ({exc})") from exc
     raise DatasetError(

@@ -17,7 +17,7 @@ class SourceSpec:
     ``member_sha256`` and, for a zip inside the wheel, ``inner_member`` and
     ``inner_sha256``; ``format`` of the member.
     kind ``openml``: ``openml_id``.
-    kind ``file``: ``path`` to the user's CSV or Parquet.
+    kind ``file``: ``path`` to the user's CSV or Parquet, ``encoding`` of a CSV.
     kind ``synthetic``: ``rows``, ``n_features``, ``anomaly_rate``,
     ``minority_share``, ``shift``, ``anomaly_distance``, ``data_seed``.
     A ``module:function`` string as kind calls that function with this spec;
@@ -26,6 +26,7 @@ class SourceSpec:
 
     kind: str = "bundled"
     format: str = "auto"
+    encoding: str = "utf-8"      # text encoding of a user's CSV (kind file), e.g. latin-1
     file: Optional[str] = None
     sha256: Optional[str] = None
     path: Optional[str] = None

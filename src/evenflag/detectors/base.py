@@ -17,7 +17,6 @@ the entry-point group ``evenflag.detectors``.
 
 from __future__ import annotations
 
-import importlib
 import inspect
 from importlib.metadata import entry_points
 from typing import Any, Protocol, runtime_checkable
@@ -25,6 +24,7 @@ from typing import Any, Protocol, runtime_checkable
 import numpy as np
 
 from evenflag.errors import ConfigError, UnknownNameError
+from evenflag.plugins import import_object
 
 ENTRY_POINT_GROUP = "evenflag.detectors"
 
@@ -42,23 +42,6 @@ class Detector(Protocol):
     def fit(self, X: np.ndarray, group: np.ndarray | None = None) -> "Detector": ...
 
     def anomaly_score(self, X: np.ndarray) -> np.ndarray: ...
-
-
-def import_object(path: str, what: str = "detector"):
-    """Import ``pkg.mod.Name`` or ``pkg.mod:Name``."""
-    module_name, sep, attr = path.partition(":")
-    if not sep:
-        module_name, _, attr = path.rpartition(".")
-    try:
-        return getattr(importlib.import_module(module_name), attr)
-    except SyntaxError as exc:
-        raise UnknownNameError(f"{what} '{path}': its module has a syntax error at {exc.filename}:{exc.lineno} "
-                               f"({exc.msg}); fix the file") from exc
-    except (ImportError, AttributeError, ValueError) as exc:
-        raise UnknownNameError(f"{what} '{path}' could not be imported ({exc}); check the import path") from exc
-    except Exception as exc:  # the module raised while it was imported
-        raise UnknownNameError(f"{what} '{path}': importing its module raised {exc.__class__.__name__}: "
-                               f"{str(exc).splitlines()[0] if str(exc) else ''}; fix the module") from exc
 
 
 def registered_names() -> dict[str, str]:
@@ -99,14 +82,33 @@ def _accepts(cls, parameter: str) -> bool:
     return parameter in params or any(p.kind is p.VAR_KEYWORD for p in params.values())
 
 
-def describe_detector(config: dict[str, Any]) -> str:
-    """A short label for tables and logs: the name, the estimator of the
-    scikit-learn wrapper, or the class of a ``_target_``."""
-    name = config.get("name") or str(config.get("_target_") or "?").rsplit(".", 1)[-1].rsplit(":", 1)[-1]
-    if name == "sklearn":
-        name = str(config.get("estimator") or "sklearn").rsplit(".", 1)[-1]
+# Config-group options that do not name one detector: the label comes from the config instead.
+GENERIC_CHOICES = ("by_name", "sklearn")
+
+
+def describe_detector(config: dict[str, Any], choice: str | None = None) -> str:
+    """The detector's one name in logs, tags, ``--where`` and reports.
+
+    ``choice`` is the config-group option the user picked (``detector=...``);
+    it is the name unless it is generic (``by_name``, ``sklearn``), in which
+    case the registered ``name``, the estimator of the scikit-learn wrapper or
+    the class of a ``_target_`` is used. A wrapper's base is appended.
+
+    >>> describe_detector({"name": "sklearn", "estimator": "sklearn.neighbors.LocalOutlierFactor"}, "local_outlier_factor")
+    'local_outlier_factor'
+    >>> describe_detector({"name": "sklearn", "estimator": "sklearn.mixture.GaussianMixture"}, "sklearn")
+    'GaussianMixture'
+    >>> describe_detector({"name": "adversarial", "base": {"name": "deep_svdd"}}, "adversarial")
+    'adversarial deep_svdd'
+    """
+    if choice and choice not in GENERIC_CHOICES:
+        name = choice
+    else:
+        name = config.get("name") or str(config.get("_target_") or "?").rsplit(".", 1)[-1].rsplit(":", 1)[-1]
+        if name == "sklearn":
+            name = str(config.get("estimator") or "sklearn").rsplit(".", 1)[-1]
     base = config.get("base")
-    if isinstance(base, dict) and base.get("name"):
+    if isinstance(base, dict) and base.get("name") and not name.endswith(f" {base['name']}"):
         name = f"{name} {base['name']}"
     return name
 

@@ -7,7 +7,7 @@ from typing import Any
 
 import numpy as np
 
-from evenflag.detectors.base import import_object
+from evenflag.plugins import import_object
 from evenflag.errors import DetectorError
 
 
@@ -50,15 +50,36 @@ class SklearnDetector:
         self.params = dict(params or {})
         self.seed = seed
 
-    def fit(self, X, group=None):
-        X = check_width(X, None, self.estimator)
+    def _unfitted_model(self):
         cls = import_object(self.estimator, "estimator")
         params = dict(self.params)
         if self.seed is not None and "random_state" in inspect.signature(cls.__init__).parameters:
             params.setdefault("random_state", self.seed)
         if cls.__name__ == "LocalOutlierFactor":
             params.setdefault("novelty", True)  # scoring new rows needs novelty mode
-        self.model_ = cls(**params).fit(X)
+        try:
+            return cls(**params)
+        except TypeError as exc:
+            raise DetectorError(f"{self.estimator}: {exc}; check detector.params") from exc
+
+    def check_settings(self) -> None:
+        """Check the estimator's arguments without data, so a sweep with
+        ``n_estimators=-5`` stops at launch. scikit-learn estimators declare
+        their allowed values (``_parameter_constraints``, checked by
+        ``_validate_params`` since scikit-learn 1.2); others are only built."""
+        model = self._unfitted_model()
+        validate = getattr(model, "_validate_params", None)
+        if callable(validate):
+            try:
+                validate()
+            except (TypeError, ValueError) as exc:
+                raise DetectorError(f"{self.estimator}: {str(exc).splitlines()[0]}") from exc
+        if not hasattr(model, "score_samples"):
+            raise DetectorError(f"{self.estimator} has no score_samples; use an outlier detector")
+
+    def fit(self, X, group=None):
+        X = check_width(X, None, self.estimator)
+        self.model_ = self._unfitted_model().fit(X)
         if not hasattr(self.model_, "score_samples"):
             raise DetectorError(f"{self.estimator} has no score_samples; use an outlier detector")
         self.n_features_in_ = X.shape[1]

@@ -69,12 +69,12 @@ def _set_threads() -> None:
 class _NeuralDetector:
     """Shared training loop. Subclasses define the network and the detection loss."""
 
-    def __init__(self, hidden: list[int] | None = None, rep_dim: int = 32, activation: str = "leaky_relu",
+    def __init__(self, hidden: list[int] | None = None, embedding_dim: int = 32, activation: str = "leaky_relu",
                  dropout: float = 0.0, epochs: int = 30, batch_size: int = 256, lr: float = 1e-3,
                  weight_decay: float = 1e-6, early_stopping: int | None = None, device: str = "cpu",
                  seed: int = 0):
         self.hidden = list(hidden) if hidden is not None else [128, 64]
-        self.rep_dim = rep_dim
+        self.embedding_dim = embedding_dim
         self.activation = activation
         self.dropout = dropout
         self.epochs = epochs
@@ -86,8 +86,11 @@ class _NeuralDetector:
         self.seed = seed
         if activation not in ACTIVATIONS:
             raise DetectorError(f"activation '{activation}' is unknown; use one of {list(ACTIVATIONS)}")
-        if epochs < 1 or batch_size < 1 or lr <= 0:
-            raise DetectorError("epochs and batch_size must be at least 1 and lr positive")
+        for key, value in (("epochs", epochs), ("batch_size", batch_size), ("embedding_dim", embedding_dim)):
+            if not isinstance(value, int) or value < 1:
+                raise DetectorError(f"detector.{key} must be a whole number of at least 1, got {value!r}")
+        if not lr > 0:
+            raise DetectorError(f"detector.lr must be positive, got {lr!r}")
 
     # -- hooks for subclasses -------------------------------------------------
     def _build(self, n_features: int) -> None:
@@ -176,7 +179,7 @@ class _NeuralDetector:
             module.to(self.device_)
         self._prepare_objective(X)
         optimizer = torch.optim.Adam(self._parameters(), lr=self.lr, weight_decay=self.weight_decay, foreach=True)
-        adv = adversary.start(group, self.rep_dim, self.device_) if adversary is not None else None
+        adv = adversary.start(group, self.embedding_dim, self.device_) if adversary is not None else None
         self.history_ = []
         best, stale = math.inf, 0
         for epoch in range(self.epochs):
@@ -230,14 +233,14 @@ class AutoencoderDetector(_NeuralDetector):
     --------
     >>> import numpy as np
     >>> X = np.random.default_rng(0).normal(size=(256, 6)).astype("float32")
-    >>> det = AutoencoderDetector(hidden=[16], rep_dim=4, epochs=2, seed=0).fit(X)
+    >>> det = AutoencoderDetector(hidden=[16], embedding_dim=4, epochs=2, seed=0).fit(X)
     >>> det.anomaly_score(X[:3]).shape
     (3,)
     """
 
     def _build(self, n_features):
-        self.encoder_ = mlp([n_features, *self.hidden, self.rep_dim], self.activation, True, self.dropout)
-        self.decoder_ = mlp([self.rep_dim, *self.hidden[::-1], n_features], self.activation, True, self.dropout)
+        self.encoder_ = mlp([n_features, *self.hidden, self.embedding_dim], self.activation, True, self.dropout)
+        self.decoder_ = mlp([self.embedding_dim, *self.hidden[::-1], n_features], self.activation, True, self.dropout)
 
     def _parameters(self):
         return [*self.encoder_.parameters(), *self.decoder_.parameters()]
@@ -264,16 +267,19 @@ class DeepSVDDDetector(_NeuralDetector):
     --------
     >>> import numpy as np
     >>> X = np.random.default_rng(0).normal(size=(256, 6)).astype("float32")
-    >>> det = DeepSVDDDetector(hidden=[16], rep_dim=4, epochs=2, seed=0).fit(X)
+    >>> det = DeepSVDDDetector(hidden=[16], embedding_dim=4, epochs=2, seed=0).fit(X)
     >>> bool((np.abs(det.center_) >= det.eps).all())
     True
     """
 
     def __init__(self, objective: str = "one_class", nu: float = 0.1, eps: float = 0.1, warmup_epochs: int = 5,
-                 pretrain_epochs: int = 0, **kwargs):
-        kwargs.setdefault("activation", "leaky_relu")
-        kwargs.setdefault("weight_decay", 1e-6)
-        super().__init__(**kwargs)
+                 pretrain_epochs: int = 0, hidden: list[int] | None = None, embedding_dim: int = 32,
+                 activation: str = "leaky_relu", dropout: float = 0.0, epochs: int = 30, batch_size: int = 256,
+                 lr: float = 1e-3, weight_decay: float = 1e-6, early_stopping: int | None = None,
+                 device: str = "cpu", seed: int = 0):
+        super().__init__(hidden=hidden, embedding_dim=embedding_dim, activation=activation, dropout=dropout,
+                         epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=weight_decay,
+                         early_stopping=early_stopping, device=device, seed=seed)
         if objective not in ("one_class", "soft_boundary"):
             raise DetectorError(f"objective '{objective}' is unknown; use one_class or soft_boundary")
         if not 0 < nu <= 1:
@@ -285,7 +291,7 @@ class DeepSVDDDetector(_NeuralDetector):
         self.pretrain_epochs = pretrain_epochs
 
     def _build(self, n_features):
-        self.encoder_ = mlp([n_features, *self.hidden, self.rep_dim], self.activation, bias=False)
+        self.encoder_ = mlp([n_features, *self.hidden, self.embedding_dim], self.activation, bias=False)
         self.decoder_ = None
 
     def _modules(self):
@@ -308,7 +314,7 @@ class DeepSVDDDetector(_NeuralDetector):
     def _pretrain(self, X):
         """Autoencoder pretraining of the encoder with a bias-free mirrored decoder."""
         torch = _torch()
-        self.pretrain_decoder_ = mlp([self.rep_dim, *self.hidden[::-1], X.shape[1]], self.activation, bias=False).to(X.device)
+        self.pretrain_decoder_ = mlp([self.embedding_dim, *self.hidden[::-1], X.shape[1]], self.activation, bias=False).to(X.device)
         params = [*self.encoder_.parameters(), *self.pretrain_decoder_.parameters()]
         optimizer = torch.optim.Adam(params, lr=self.lr, weight_decay=self.weight_decay)
         generator = torch.Generator().manual_seed(self.seed + 1)
@@ -372,8 +378,8 @@ class AdversarySpec:
         self.weight, self.hidden, self.steps = weight, hidden, steps
         self.warmup_epochs, self.ramp_epochs, self.mode, self.lr, self.seed = warmup_epochs, ramp_epochs, mode, lr, seed
 
-    def start(self, group, rep_dim: int, device):
-        return _AdversaryState(self, group, rep_dim, device)
+    def start(self, group, embedding_dim: int, device):
+        return _AdversaryState(self, group, embedding_dim, device)
 
 
 _REVERSAL = None
@@ -399,7 +405,7 @@ def _gradient_reversal(z, scale: float):
 
 
 class _AdversaryState:
-    def __init__(self, spec: AdversarySpec, group, rep_dim: int, device):
+    def __init__(self, spec: AdversarySpec, group, embedding_dim: int, device):
         torch = _torch()
         if group is None:
             raise DetectorError("the adversarial detector needs the group of each training row")
@@ -414,8 +420,8 @@ class _AdversaryState:
         # Embeddings of a hypersphere model are tiny in scale; standardising them
         # at the adversary's input (batch statistics) lets it learn at all.
         self.net = torch.nn.Sequential(
-            torch.nn.BatchNorm1d(rep_dim, affine=False),
-            mlp([rep_dim, *spec.hidden, len(values)], "relu", bias=True, last_activation=False),
+            torch.nn.BatchNorm1d(embedding_dim, affine=False),
+            mlp([embedding_dim, *spec.hidden, len(values)], "relu", bias=True, last_activation=False),
         ).to(device)
         self.optimizer = torch.optim.Adam(self.net.parameters(), lr=spec.lr, foreach=True)
         self.loss_fn = torch.nn.CrossEntropyLoss()
@@ -527,7 +533,11 @@ class AdversarialDetector:
         self.adversary_lr = adversary_lr
         self.seed = seed
 
-    def fit(self, X, group=None):
+    def check_settings(self) -> None:
+        """Build the base detector (its argument checks) without data."""
+        self._base_detector()
+
+    def _base_detector(self):
         settings = dict(self.base)
         name = settings.pop("name", "deep_svdd")
         classes = {"deep_svdd": DeepSVDDDetector, "autoencoder": AutoencoderDetector}
@@ -542,7 +552,10 @@ class AdversarialDetector:
         if unknown:
             raise DetectorError(f"adversarial base '{name}' has no setting {unknown}; "
                                 f"allowed: {', '.join(sorted(allowed - {'self', 'kwargs', 'seed'}))}")
-        self.base_ = classes[name](**settings)
+        return classes[name](**settings)
+
+    def fit(self, X, group=None):
+        self.base_ = self._base_detector()
         spec = AdversarySpec(self.weight, self.adversary_hidden, self.adversary_steps, self.warmup_epochs,
                              self.ramp_epochs, self.mode, self.adversary_lr, self.seed)
         self.base_._train(X, group, adversary=spec)

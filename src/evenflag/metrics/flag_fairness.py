@@ -28,6 +28,7 @@ import numpy as np
 
 from evenflag.metrics.facts import FOUR_FIFTHS
 from evenflag.metrics.inputs import Counts, MetricInput, safe_divide, spread, warn_undefined
+from evenflag.metrics.keys import group_key
 
 
 def flag_fairness_from_counts(counts: Counts) -> dict[str, np.ndarray]:
@@ -51,7 +52,7 @@ def flag_fairness_from_counts(counts: Counts) -> dict[str, np.ndarray]:
     hit = safe_divide(counts.flagged[:, :, 1], counts.total[:, :, 1])
     false_flag = safe_divide(counts.flagged[:, :, 0], counts.total[:, :, 0])
     ref = counts.reference
-    for g, name in enumerate(counts.group_names):
+    for g, name in enumerate(map(group_key, counts.group_names)):
         out[f"base_rate/{name}"] = safe_divide(counts.total[:, g, 1], rows[:, g])
         out[f"flag_rate/{name}"] = rate[:, g]
         out[f"hit_rate/{name}"] = hit[:, g]
@@ -89,7 +90,7 @@ def rate_counts(counts: Counts, key: str) -> list[tuple[float, float]]:
     if base in ("flag_precision", "flag_recall"):
         true_flags = flagged[:, 1].sum()
         return [(true_flags, flagged.sum() if base == "flag_precision" else total[:, 1].sum())]
-    g = counts.group_names.index(name)
+    g = [group_key(n) for n in counts.group_names].index(name)
     if base in signed:
         return [tuple(map(float, pick[signed[base]](g))), tuple(map(float, pick[signed[base]](counts.reference)))]
     return [tuple(map(float, pick[base](g)))]
@@ -205,7 +206,7 @@ def flag_rates(flag, group) -> dict[str, float]:
     flag = np.asarray(flag)
     inputs = MetricInput.build(np.zeros(len(flag), dtype=int), None, flag, group)
     out = flag_fairness_from_counts(inputs.counts())
-    return {name: float(out[f"flag_rate/{name}"][0]) for name in inputs.group_names}
+    return {name: float(out[f"flag_rate/{group_key(name)}"][0]) for name in inputs.group_names}
 
 
 def flag_rate_ratio(flag, group) -> float:

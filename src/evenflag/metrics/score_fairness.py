@@ -32,6 +32,7 @@ import numpy as np
 
 from evenflag.metrics.detection import auroc_from_cumulative
 from evenflag.metrics.inputs import Counts, MetricInput, spread
+from evenflag.metrics.keys import group_key
 
 
 def _distances(cdf_a, cdf_b, support):
@@ -73,7 +74,8 @@ def score_fairness_from_counts(counts: Counts, with_pairs: bool = False):
     neg = counts.blocks[:, :, 0, :]
     cum_neg = np.cumsum(neg, axis=-1)                       # once, shared by every AUROC below
     group_auc = auroc_from_cumulative(pos, neg, cum_neg)    # (B, G)
-    for g, name in enumerate(names):
+    keys = [group_key(n) for n in names]
+    for g, name in enumerate(keys):
         out[f"auroc/{name}"] = group_auc[:, g]
         if g != ref:
             out[f"score_shift/{name}"] = mean_quantile[:, g] - mean_quantile[:, ref]
@@ -82,7 +84,7 @@ def score_fairness_from_counts(counts: Counts, with_pairs: bool = False):
     cross = []
     for a, b in permutations(range(len(names)), 2):
         value = auroc_from_cumulative(pos[:, a], neg[:, b], cum_neg[:, b])
-        out[f"cross_auroc/{names[a]}_vs_{names[b]}"] = value
+        out[f"cross_auroc/{keys[a]}_vs_{keys[b]}"] = value
         cross.append(value)
     out["cross_auroc_gap"] = spread(np.stack(cross, axis=1))
     return (out, pairs) if with_pairs else out

@@ -35,6 +35,7 @@ from evenflag.metrics.detection import detection_from_counts
 from evenflag.metrics.facts import MIN_BOOTSTRAP_COUNT, fact
 from evenflag.metrics.flag_fairness import flag_fairness_from_counts, flag_tests, rate_counts
 from evenflag.metrics.inputs import FlagRule, MetricInput, UndefinedMetricWarning, counts_from_cells, rethreshold
+from evenflag.metrics.keys import group_key
 from evenflag.metrics.intervals import (
     delong_from_blocks,
     katz_ratio,
@@ -203,7 +204,7 @@ def closed_form_intervals(methods: dict, counts, level: float) -> dict[str, floa
 def _delong_parts(counts) -> dict[str, tuple[float, float]]:
     """(AUROC, DeLong variance) of every AUROC key, from the point counts."""
     pos, neg = counts.blocks[0, :, 1, :], counts.blocks[0, :, 0, :]
-    names, ref = counts.group_names, counts.reference
+    names, ref = [group_key(n) for n in counts.group_names], counts.reference
     parts = {"auroc": delong_from_blocks(pos.sum(axis=0), neg.sum(axis=0))}
     per_group = [delong_from_blocks(pos[g], neg[g]) for g in range(len(names))]
     for g, name in enumerate(names):

@@ -34,16 +34,32 @@ class RunTable:
     studies: list[str]
 
 
-def detector_label(params: dict) -> str:
-    """The detector's label rebuilt from flattened params, plus the mitigation."""
+def detector_label(params: dict, tags: dict | None = None) -> str:
+    """The detector's name as tagged at run time (rebuilt from the params for
+    runs older than the tag), plus the mitigation."""
     from evenflag.detectors.base import describe_detector
 
-    config = {k[len("detector."):]: v for k, v in params.items() if k.startswith("detector.") and v not in ("None", "")}
-    if "base.name" in config:
-        config["base"] = {"name": config["base.name"]}
-    name = describe_detector(config)
+    name = (tags or {}).get("evenflag.detector")
+    if not name:
+        config = {k[len("detector."):]: v for k, v in params.items()
+                  if k.startswith("detector.") and v not in ("None", "")}
+        if "base.name" in config:
+            config["base"] = {"name": config["base.name"]}
+        name = describe_detector(config)
     mitigation = params.get("mitigation.kind", "none")
     return name if mitigation in ("none", None) else f"{name} + {mitigation}"
+
+
+def _matches(where: dict[str, str], params: dict, tags: dict) -> bool:
+    """``--where`` keys are params or tags; ``detector`` and ``detector.name``
+    also match the detector's one name (``detector.name=local_outlier_factor``)."""
+    for key, value in where.items():
+        found = {params.get(key, tags.get(key))}
+        if key in ("detector", "detector.name"):
+            found.add(tags.get("evenflag.detector"))
+        if value not in found:
+            return False
+    return True
 
 
 def load_runs(uri: str, studies: list[str], where: dict[str, str] | None = None) -> RunTable:
@@ -72,6 +88,7 @@ def _load(client, uri, studies, where, experiments) -> RunTable:
             raise EvenflagError(f"study '{study}' is not in the tracking store {uri}; studies there: {', '.join(known) or 'none'}")
         experiments.append(found)
     rows = []
+    keys_seen: set[str] = set()
     token = None
     while True:
         page = client.search_runs([e.experiment_id for e in experiments], max_results=5000, page_token=token)
@@ -90,7 +107,7 @@ def _load(client, uri, studies, where, experiments) -> RunTable:
                 "study": next(e.name for e in experiments if e.experiment_id == run.info.experiment_id),
                 "status": run.info.status,
                 "dataset": params.get("dataset.name", tags.get("evenflag.dataset", "?")),
-                "detector": detector_label(params),
+                "detector": detector_label(params, tags),
                 "weight": float(params["detector.weight"]) if params.get("detector.weight") not in (None, "None") else np.nan,
                 "seed": int(params["seed"]) if params.get("seed", "").lstrip("-").isdigit() else -1,
                 "error": tags.get("evenflag.error", ""),
@@ -102,7 +119,8 @@ def _load(client, uri, studies, where, experiments) -> RunTable:
                 "natural_base_rates": tags.get("evenflag.natural_base_rates", ""),
                 "reference_group": tags.get("evenflag.reference_group", ""),
             }
-            if where and any(params.get(k, tags.get(k)) != v for k, v in where.items()):
+            keys_seen.update(params, tags)
+            if where and not _matches(where, params, tags):
                 continue
             row.update(run.data.metrics)
             rows.append(row)
@@ -110,6 +128,11 @@ def _load(client, uri, studies, where, experiments) -> RunTable:
         if not token:
             break
     runs = pd.DataFrame(rows)
+    unknown = sorted(k for k in (where or {}) if k not in keys_seen and k != "detector")
+    if unknown:
+        shown = sorted(k for k in keys_seen if not k.startswith(("mlflow.", "evenflag.version.")))
+        raise EvenflagError(f"--where {unknown[0]}: no run in studies {studies} has a param or tag of that name; "
+                            f"use one of: {', '.join(shown[:40])}{' ...' if len(shown) > 40 else ''}")
     if runs.empty:
         raise EvenflagError(f"no runs match in studies {studies}; run a sweep first or loosen the filter")
     runs = deduplicate(with_settings(runs))

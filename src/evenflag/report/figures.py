@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 
 from evenflag.metrics.facts import FOUR_FIFTHS, better_score, fact
+from evenflag.metrics.keys import group_from_key
 from evenflag.report.collect import RunTable
 from evenflag.report.stats import cd_diagram_reason
 
@@ -135,7 +136,7 @@ def flag_rate_figure(runs: pd.DataFrame, out: Path):
                        yerr=clipped_errors([mean], [half]),
                        color="white", edgecolor="0.15", hatch=HATCHES[g_index % len(HATCHES)], capsize=2,
                        error_kw={"elinewidth": 0.8, "ecolor": "0.3"},
-                       label=column.split("/", 1)[1] if d_index == 0 else None)
+                       label=group_from_key(column.split("/", 1)[1]) if d_index == 0 else None)
             if np.isfinite(np.nanmax(means)) if len(means) else False:
                 line = FOUR_FIFTHS * np.nanmax(means)
                 ax.plot([d_index - 0.45, d_index + 0.45], [line, line], "--", color="0.1", linewidth=1,

@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 
 from evenflag.metrics.facts import FOUR_FIFTHS, direction_word
+from evenflag.metrics.keys import group_from_key
 from evenflag.report.collect import RunTable
 from evenflag.report.stats import cd_diagram_reason, wilcoxon_datasets
 
@@ -50,7 +51,7 @@ def base_rate_lines(rows: pd.DataFrame) -> list[str]:
         out.append(f"base rates in the dataset: {natural[0]}")
     columns = [c for c in rows.columns if c.startswith("base_rate/") and "." not in c.split("/", 1)[1]]
     for protocol, part in rows[rows["status"] == "FINISHED"].groupby("protocol"):
-        shown = [f"{c.split('/', 1)[1]}={part[c].mean():.4f}" for c in columns if part[c].notna().any()]
+        shown = [f"{group_from_key(c.split('/', 1)[1])}={part[c].mean():.4f}" for c in columns if part[c].notna().any()]
         if shown:
             out.append(f"base rates in the test rows ({protocol}): {', '.join(shown)}")
     return out
@@ -100,7 +101,7 @@ def difference_lines(runs: RunTable) -> list[str]:
             low = part.get(f"{column}.ci_low", pd.Series(np.nan, index=part.index))
             high = part.get(f"{column}.ci_high", pd.Series(np.nan, index=part.index))
             with_interval = int((low.notna() & high.notna()).sum())
-            piece = f"{column.split('/', 1)[1]} {values.mean():+.3f}"
+            piece = f"{group_from_key(column.split('/', 1)[1])} {values.mean():+.3f}"
             if with_interval == 0:
                 piece += " (no per-run intervals: the runs used metrics.bootstrap=0)"
             else:

@@ -22,6 +22,7 @@ from omegaconf import DictConfig, OmegaConf
 
 from evenflag.errors import ConfigError, EvenflagError
 from evenflag.paths import config_dir
+from evenflag.plugins import PLUGIN_DIRS_ENV
 from evenflag.runner import ledger
 from evenflag.runner.config import register
 
@@ -44,6 +45,12 @@ def launch(argv: list[str]) -> int:
         return _call_hydra(argv)
     multirun = any(a in ("-m", "--multirun") for a in argv)
     overrides, extra_dirs = _split_args(argv)
+    overrides = _route_detector_name(_free_keys(overrides), extra_dirs)
+    # Plugin code named in a --config-dir yaml imports without PYTHONPATH (plugins.py).
+    os.environ[PLUGIN_DIRS_ENV] = os.pathsep.join(str(Path(d).resolve()) for d in extra_dirs)
+    # Hydra itself reads options before overrides and one --config-dir only:
+    # hand it flags first and every config folder as a search path.
+    argv = (["--multirun"] if multirun else []) + _search_path(extra_dirs) + overrides
     combos, plain_values = _single_value_combinations(overrides, extra_dirs)
     first = None
     for combo in combos:
@@ -171,6 +178,54 @@ def _split_args(argv: list[str]) -> tuple[list[str], list[str]]:
     return overrides, extra_dirs
 
 
+def _search_path(extra_dirs: list[str]) -> list[str]:
+    if not extra_dirs:
+        return []
+    for folder in extra_dirs:
+        if not Path(folder).is_dir():
+            raise ConfigError(f"--config-dir {folder}: no such folder; give the folder that holds your config groups "
+                              "(e.g. a folder with detector/<name>.yaml)")
+    return [f"hydra.searchpath=[{','.join('file://' + str(Path(d).resolve()) for d in extra_dirs)}]"]
+
+
+def _free_keys(overrides: list[str]) -> list[str]:
+    """``tags.owner=claims-team`` (the example in configs/config.yaml): tags are
+    free-form, so a new tag is added (``++``) rather than refused as unknown."""
+    return ["++" + o.lstrip("+") if o.lstrip("+").startswith("tags.") and "=" in o else o for o in overrides]
+
+
+def _route_detector_name(overrides: list[str], extra_dirs: list[str]) -> list[str]:
+    """``detector.name=<name>`` picks a detector by name, as DEVELOPERS.md says.
+
+    Setting only the key would keep the default detector's other settings
+    (isolation forest's ``n_estimators`` given to a plugin class). So, when no
+    ``detector=`` option is given, a name with a yaml in the detector group
+    becomes that option, and any other registered name (built-in or entry
+    point) becomes the empty option ``by_name``, with the name and the
+    command line's ``detector.*`` settings forced in (``++``)."""
+    parsed = _parse(overrides)
+    keys = [item.get_key_element().lstrip("+~") for item in parsed]
+    if "detector" in keys or "detector.name" not in keys:
+        return overrides
+    index = len(keys) - 1 - keys[::-1].index("detector.name")
+    item = parsed[index]
+    if item.is_sweep_override():
+        raise ConfigError("detector.name=a,b cannot sweep detectors; sweep the config group instead: detector=a,b "
+                          "(a registered name without a yaml: add configs/detector/<name>.yaml with 'name: <name>')")
+    name = str(item.value())
+    if name in _options("detector", extra_dirs):
+        return [f"detector={name}" if i == index else o for i, o in enumerate(overrides) if i == index or keys[i] != "detector.name"]
+    from evenflag.detectors.base import resolve_detector_class
+
+    resolve_detector_class(name)  # unknown names stop here, with the list of registered ones
+    out = ["detector=by_name"]
+    for key, original in zip(keys, overrides):
+        if key == "detector.name":
+            continue
+        out.append("++" + original.lstrip("+") if key.startswith("detector.") else original)
+    return out + [f"++detector.name={name}"]
+
+
 def _force_keys_of_swept_groups(argv: list[str], overrides: list[str], extra_dirs: list[str]) -> list[str]:
     """``detector=deep_svdd,autoencoder detector.epochs=2``: Hydra's sweeper first
     composes the non-sweep overrides onto the default detector, which has no
@@ -241,12 +296,18 @@ def _check_plain_values(cfg: DictConfig, plain_values: list[str]) -> None:
 
     if not plain_values:
         return
-    run = OmegaConf.merge(OmegaConf.structured(RunConfig), {k: cfg[k] for k in cfg if k != "hydra"})
+    from evenflag.runner.config import check_values
+
     for item, text in zip(_parse(plain_values), plain_values):
+        run = OmegaConf.merge(OmegaConf.structured(RunConfig), {k: cfg[k] for k in cfg if k != "hydra"})
         try:
             OmegaConf.update(run, item.key_or_group.lstrip("+~"), item.value(), merge=True)
         except (OmegaConfBaseException, ValueError) as exc:
             raise ConfigError(_composition_message(exc, [text], [])) from exc
+        try:
+            check_values(run)
+        except ConfigError as exc:
+            raise ConfigError(f"{text}: {exc}") from exc
 
 
 def _count_jobs(overrides: list[str], cfg: DictConfig) -> int:
@@ -270,7 +331,7 @@ def _compose(overrides: list[str], extra_dirs: list[str]) -> DictConfig:
     from hydra.errors import HydraException, MissingConfigException
     from omegaconf.errors import OmegaConfBaseException
 
-    search = [f"hydra.searchpath=[{','.join('file://' + str(Path(d).resolve()) for d in extra_dirs)}]"] if extra_dirs else []
+    search = _search_path(extra_dirs)
     try:
         with initialize_config_dir(config_dir=str(config_dir()), version_base="1.3"):
             cfg = compose("config", overrides=search + overrides, return_hydra_config=True)
@@ -282,22 +343,18 @@ def _compose(overrides: list[str], extra_dirs: list[str]) -> DictConfig:
     if missing:
         raise ConfigError(f"required value(s) not set: {', '.join(missing)}; set them on the command line, "
                           f"e.g. {missing[0]}=...")
-    from evenflag.mitigation import check_kind
-    from evenflag.thresholds import POLICIES
-    from evenflag.data.protocol import PROTOCOL_KINDS
+    from evenflag.runner.config import check_values
 
-    if cfg.threshold.policy not in POLICIES:
-        raise ConfigError(f"threshold.policy '{cfg.threshold.policy}' is unknown; use one of {list(POLICIES)}")
-    if cfg.protocol.kind not in PROTOCOL_KINDS:
-        raise ConfigError(f"protocol.kind '{cfg.protocol.kind}' is unknown; use one of {list(PROTOCOL_KINDS)}")
-    check_kind(cfg.mitigation.kind)
-    from evenflag.detectors.base import resolve_detector_class
-
-    detector = cfg.detector
-    if not detector.get("_target_") and not detector.get("name"):
-        raise ConfigError("detector config needs 'name' or '_target_'")
-    resolve_detector_class(detector.get("_target_") or detector.get("name"))
+    check_values(cfg)
     return cfg
+
+
+def compose_run_config(overrides: list[str], extra_dirs: list[str] = ()) -> DictConfig:
+    """One run's config, composed and checked as ``evenflag run`` does (for
+    commands such as ``datasets show`` that read configs without running)."""
+    extra_dirs = list(extra_dirs)
+    os.environ[PLUGIN_DIRS_ENV] = os.pathsep.join(str(Path(d).resolve()) for d in extra_dirs)
+    return _compose(_route_detector_name(_free_keys(list(overrides)), extra_dirs), extra_dirs)
 
 
 def _options(group: str, extra_dirs: list[str]) -> list[str]:

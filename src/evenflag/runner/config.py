@@ -63,3 +63,53 @@ GROUP_SCHEMAS = {
 
 def register() -> None:
     ConfigStore.instance().store(name=SCHEMA_NAME, node=RunConfig)
+
+
+def check_values(cfg) -> None:
+    """Every value of a composed run config that can be checked without data,
+    checked before any job starts (one ConfigError naming the key and the fix).
+
+    The schema above checks types; this checks ranges and names, and builds
+    the detector once so that its own argument checks (and scikit-learn's
+    parameter constraints) run at launch rather than after training."""
+    from omegaconf import OmegaConf
+
+    from evenflag.data.protocol import check_spec as check_protocol
+    from evenflag.detectors.base import build_detector
+    from evenflag.errors import ConfigError, EvenflagError
+    from evenflag.metrics.suites import check_spec as check_metrics
+    from evenflag.mitigation import check_kind
+    from evenflag.thresholds import check_spec as check_threshold
+
+    values = OmegaConf.to_container(OmegaConf.masked_copy(cfg, [k for k in cfg if k != "hydra"]), resolve=True)
+    try:
+        check_threshold(ThresholdSpec(**values["threshold"]))
+        check_protocol(ProtocolSpec(**values["protocol"]))
+        check_metrics(MetricsSpec(**values["metrics"]))
+    except EvenflagError as exc:
+        raise ConfigError(str(exc)) from exc
+    check_kind(values["mitigation"]["kind"])
+    dataset = values["dataset"]
+    if dataset.get("small_groups") not in ("merge", "refuse"):
+        raise ConfigError(f"dataset.small_groups must be 'merge' or 'refuse', got '{dataset.get('small_groups')}'")
+    if int(dataset.get("min_group_size") or 0) < 0:
+        raise ConfigError(f"dataset.min_group_size must be 0 or more, got {dataset['min_group_size']}")
+    if values["protocol"]["min_group_size"] < 1:
+        raise ConfigError(f"protocol.min_group_size must be at least 1, got {values['protocol']['min_group_size']}")
+    threads = values.get("threads")
+    if threads is not None and threads < 1:
+        raise ConfigError(f"threads={threads} is invalid; use a positive number of threads per job, or null for the "
+                          "library default")
+    tracking = values["tracking"]
+    for key in ("timeout_seconds", "claim_settle_seconds"):
+        if not tracking[key] >= 0:
+            raise ConfigError(f"tracking.{key} must be 0 or more, got {tracking[key]}")
+    try:
+        detector = build_detector(values["detector"], seed=values["seed"])
+        check = getattr(detector, "check_settings", None)
+        if callable(check):
+            check()
+    except ConfigError:
+        raise
+    except EvenflagError as exc:
+        raise ConfigError(str(exc)) from exc

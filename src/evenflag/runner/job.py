@@ -18,13 +18,26 @@ from evenflag.runner.provenance import fingerprint, flatten, git_state, library_
 from evenflag.runner.tracking import TAG, tracker_for
 
 
-def _name(cfg: DictConfig) -> str:
+def _detector_choice() -> str | None:
+    """The ``detector=`` option the user picked, when Hydra composed this job."""
+    try:
+        from hydra.core.hydra_config import HydraConfig
+
+        return HydraConfig.get().runtime.choices.get("detector")
+    except ValueError:
+        return None
+
+
+def _detector_name(cfg: DictConfig) -> str:
     from evenflag.detectors.base import describe_detector
 
-    detector = describe_detector(OmegaConf.to_container(cfg.detector, resolve=True))
+    return describe_detector(OmegaConf.to_container(cfg.detector, resolve=True), _detector_choice())
+
+
+def _name(cfg: DictConfig) -> str:
     extra = f" {cfg.mitigation.kind}" if cfg.mitigation.kind != "none" else ""
     weight = f" weight={cfg.detector.weight}" if "weight" in cfg.detector else ""
-    return f"{cfg.dataset.name} {detector}{weight}{extra} seed={cfg.seed}"
+    return f"{cfg.dataset.name} {_detector_name(cfg)}{weight}{extra} seed={cfg.seed}"
 
 
 def _output_dir() -> Path:
@@ -56,6 +69,7 @@ def run_job(cfg: DictConfig) -> str:
         commit, dirty = git_state()
         tags = {f"{TAG}data_sha256": dataset.sha256, f"{TAG}table_sha256": dataset.table_sha256,
                 f"{TAG}git_commit": commit, f"{TAG}git_dirty": str(dirty).lower(), f"{TAG}dataset": cfg.dataset.name,
+                f"{TAG}detector": _detector_name(cfg),
                 **{f"{TAG}version.{k}": v for k, v in library_versions().items()},
                 **{str(k): str(v) for k, v in (cfg.tags or {}).items()}}
         # Claim the cell before computing: a finished run or a live claim elsewhere means skip.
@@ -76,6 +90,8 @@ def run_job(cfg: DictConfig) -> str:
         notes = {f"{TAG}{k}": v for k, v in out.notes.items()}
         notes[f"{TAG}groups"] = ",".join(map(str, out.dataset.group.cat.categories))
         notes[f"{TAG}source"] = out.dataset.source
+        if out.dataset.missing_values:  # filled by the encoder; say how many, per column
+            notes[f"{TAG}missing_values"] = ",".join(f"{c}={n}" for c, n in out.dataset.missing_values.items())
         notes[f"{TAG}status"] = "finished"
         tracker.log(run_id, {}, metrics, notes)
         if out.history:

@@ -59,13 +59,14 @@ def module_source_sha256(module_name: str) -> str:
     """sha256 of the source file of a module outside evenflag (a plugin detector,
     a ``module:function`` data reader); '' for evenflag's own modules or when the
     source cannot be found (then only its name is fingerprinted)."""
-    import importlib
     import inspect
+
+    from evenflag.plugins import import_module
 
     if not module_name or module_name.split(".")[0] == "evenflag":
         return ""
     try:
-        source = inspect.getsourcefile(importlib.import_module(module_name))
+        source = inspect.getsourcefile(import_module(module_name))
         return hashlib.sha256(Path(source).read_bytes()).hexdigest() if source else ""
     except (ImportError, OSError, TypeError):
         return ""
