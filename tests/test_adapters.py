@@ -12,7 +12,7 @@ import pytest
 
 from evenflag.data import cache
 from evenflag.data.registry import get_spec, load_dataset
-from evenflag.errors import ChecksumError, FetchError
+from evenflag.errors import ChecksumError, DatasetError, FetchError
 
 
 def _file_spec(path, **extra):
@@ -103,20 +103,22 @@ def test_openml_unreachable_gives_one_clear_error(tmp_path, monkeypatch):
     _cut_network(monkeypatch)
     spec = get_spec("openml_credit")
     spec.source.openml_id = 424242
-    with pytest.raises(Exception) as info:
+    with pytest.raises(DatasetError, match="OpenML dataset 424242 could not be loaded"):
         load_dataset(spec)
-    assert "OpenML dataset 424242 could not be loaded" in str(info.value)
 
 
-def test_package_dataset_is_parsed_once_then_read_from_cache(private_cache):
+def test_package_dataset_is_parsed_once_then_read_from_cache(private_cache, capsys):
     ds = load_dataset("rossi")
     parsed = cache.parsed_path("rossi", get_spec("rossi").source.member_sha256)
     assert parsed.exists() and list((private_cache / "wheels").glob("lifelines-*.whl"))
+    # The one download says what it fetches and that it happens once.
+    assert capsys.readouterr().err.count("evenflag: downloading lifelines==") == 1
     from evenflag.data.registry import forget_loaded
 
     forget_loaded()
     again = load_dataset("rossi")
     assert np.array_equal(again.label, ds.label)
+    assert "downloading" not in capsys.readouterr().err
 
 
 def test_tampered_cache_is_refused(private_cache):

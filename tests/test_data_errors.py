@@ -194,3 +194,13 @@ def test_latin1_file_names_the_encoding_option(tmp_path, frame):
         load_dataset(spec)
     spec["source"]["encoding"] = "latin-1"
     assert sorted(load_dataset(spec).group_counts()) == ["Nordm\u00e4rkte", "S\u00fcd"]
+
+
+def test_group_value_names_must_name_every_value(tmp_path, frame):
+    frame["region"] = np.where(frame["region"] == "north", 1, 2)
+    spec = _claims(tmp_path, frame)
+    spec["group_value_names"] = {"region": {"1": "north"}}
+    with pytest.raises(DatasetError, match=r"group column 'region' has values \['2'\] without a name in group_value_names.region"):
+        load_dataset(spec)
+    spec["group_value_names"] = {"region": {"1": "north", "2": "south"}}
+    assert sorted(load_dataset(spec).group_counts()) == ["north", "south"]

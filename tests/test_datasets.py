@@ -44,8 +44,10 @@ def test_rossi_rows():
     ds = load_dataset("rossi")
     # Rossi, Berk and Lenihan (1980) as documented in carData Rossi: 432 released prisoners.
     assert ds.n_rows == 432
-    # race 1 (black) 379 / 0: 53 and 26.4% re-arrested: regression values counted in the pinned file.
-    assert ds.group_counts() == {"0": 53, "1": 379}
+    # carData Rossi documentation: race is "black" or "other"; lifelines codes them 1 and 0, named by
+    # group_value_names. Counts 379 / 53 and 26.4% re-arrested: regression values counted in the pinned file.
+    assert ds.group_counts() == {"black": 379, "other": 53}
+    assert ds.protected["race"].value_counts().to_dict() == {1: 379, 0: 53}
     assert ds.base_rate == pytest.approx(0.264, abs=0.0005)
 
 

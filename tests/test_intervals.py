@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from evenflag.metrics.inputs import FlagRule, MetricInput, UndefinedMetricWarning, rethreshold
+from evenflag.metrics.inputs import FlagRule, MetricInput, MetricNaNWarning, rethreshold
 from evenflag.metrics.intervals import delong_components, katz_ratio, newcombe_difference, wilson
 from evenflag.metrics.suites import evaluate
 
@@ -85,7 +85,7 @@ def test_bootstrap_auroc_interval_agrees_with_delong():
     score = rng.normal(size=3000) + 1.2 * label
     group = rng.choice(["a", "b"], 3000)
     inputs = MetricInput.build(label, score, None, group)
-    warnings.simplefilter("ignore", UndefinedMetricWarning)
+    warnings.simplefilter("ignore", MetricNaNWarning)
     draws = np.concatenate([detection_from_counts(inputs.counts(w))["auroc"]
                             for w in resample_weights(inputs, 1000, np.random.default_rng(0))])
     low, high = percentile_interval(draws)
@@ -121,7 +121,7 @@ def test_small_group_without_flags_gets_a_marked_score_interval():
     label[::20] = 1
     score = np.arange(300.0)
     with warnings.catch_warnings():
-        warnings.simplefilter("ignore", UndefinedMetricWarning)
+        warnings.simplefilter("ignore", MetricNaNWarning)
         result = evaluate(["flag_fairness"], label, score, flag, group, n_bootstrap=200,
                           rule=FlagRule("top_fraction", 16 / 300))
     v = result.values
@@ -238,7 +238,7 @@ def test_coverage_of_auroc():
     for rep in range(REPS):
         label, score, group = _population(rng, 2000, 0.05, 0.10, 0.5)
         with warnings.catch_warnings():
-            warnings.simplefilter("ignore", UndefinedMetricWarning)  # no flags given: flag metrics undefined
+            warnings.simplefilter("ignore", MetricNaNWarning)  # no flags given: flag metrics undefined
             v = evaluate(["detection"], label, score, None, group, n_bootstrap=20, seed=rep).values
         hits += v["auroc.ci_low"] <= truth <= v["auroc.ci_high"]
     assert 0.92 <= hits / REPS <= 0.975

@@ -12,7 +12,7 @@ from sklearn.metrics import average_precision_score, roc_auc_score
 from evenflag.errors import MetricInputError
 from evenflag.metrics.detection import auroc, average_precision
 from evenflag.metrics.flag_fairness import flag_rate_ratio, flag_rates, flips_to_parity, two_proportion_z
-from evenflag.metrics.inputs import MetricInput, UndefinedMetricWarning
+from evenflag.metrics.inputs import MetricInput, MetricNaNWarning
 from evenflag.metrics.leakage import flag_overlap, leakage_auroc
 from evenflag.metrics.score_fairness import score_distance, score_ks, wasserstein_raw
 from evenflag.metrics.suites import evaluate
@@ -92,7 +92,7 @@ def test_r_precision_without_ties():
     score = np.array([9, 8, 7, 6, 5, 4, 3, 2], dtype=float)
     # R = 3 anomalies; the top 3 scores hold 2 of them.
     with warnings.catch_warnings():
-        warnings.simplefilter("ignore", UndefinedMetricWarning)
+        warnings.simplefilter("ignore", MetricNaNWarning)
         assert evaluate(["detection"], label, score, None, ["a", "b"] * 4).values["r_precision"] == pytest.approx(2 / 3)
 
 
@@ -201,7 +201,7 @@ def test_flag_overlap_is_jaccard():
 scores = st.lists(st.floats(-100, 100, allow_nan=False), min_size=8, max_size=60)
 
 
-@pytest.mark.filterwarnings("ignore::evenflag.metrics.inputs.UndefinedMetricWarning")
+@pytest.mark.filterwarnings("ignore::evenflag.metrics.inputs.MetricNaNWarning")
 @settings(max_examples=60, deadline=None)
 @given(scores, st.randoms(use_true_random=False))
 def test_relabelling_groups_leaves_ratios_unchanged(values, random):
@@ -275,20 +275,20 @@ def test_bootstrap_matches_a_plain_loop_on_the_same_draws():
 
 # ---------------------------------------------------------------- undefined and bad input
 def test_one_label_only_gives_nan_with_a_warning():
-    with pytest.warns(UndefinedMetricWarning, match="auroc is undefined"):
+    with pytest.warns(MetricNaNWarning, match="auroc is undefined"):
         v = evaluate(ALL, [0, 0, 0, 0], [1, 2, 3, 4], [0, 1, 0, 1], ["a", "a", "b", "b"]).values
     assert np.isnan(v["auroc"]) and v["flag_rate_ratio"] == 1.0
 
 
 def test_group_without_anomalies_gives_nan_hit_rate():
-    with pytest.warns(UndefinedMetricWarning, match="hit_rate/b is undefined"):
+    with pytest.warns(MetricNaNWarning, match="hit_rate/b is undefined"):
         v = evaluate(["flag_fairness"], [1, 0, 0, 0], [1, 2, 3, 4], [1, 0, 0, 1], ["a", "a", "b", "b"]).values
     assert np.isnan(v["hit_rate/b"]) and np.isnan(v["hit_rate_gap"])
 
 
 def test_constant_scores_are_defined():
     with warnings.catch_warnings():
-        warnings.simplefilter("error", UndefinedMetricWarning)
+        warnings.simplefilter("error", MetricNaNWarning)
         v = evaluate(["detection", "score_fairness"], [1, 0, 1, 0], [2, 2, 2, 2], [1, 0, 1, 0], ["a", "a", "b", "b"]).values
     assert v["auroc"] == 0.5 and v["score_distance"] == 0.0 and v["score_ks"] == 0.0
 

@@ -110,6 +110,7 @@ def build_dataset(
     drop_columns: Sequence[str] = (),
     min_group_size: int = 0,
     small_groups: str = "refuse",
+    group_value_names: dict | None = None,
     licence: str = "",
     citation: str = "",
 ) -> Dataset:
@@ -130,6 +131,10 @@ def build_dataset(
     min_group_size : int
         Group values with fewer rows are merged into ``other``
         (``small_groups="merge"``) or refused (``"refuse"``).
+    group_value_names : dict, optional
+        Names for coded group values per column, as the data's documentation
+        gives them (``{"race": {"1": "black", "0": "other"}}``); every value
+        present must be named.
 
     Returns
     -------
@@ -191,7 +196,11 @@ def build_dataset(
                 f"dataset '{name}': group column '{column}' has {n_missing} missing values; "
                 "drop or fill those rows (for example with an explicit 'unknown' value) before loading"
             )
-    parts = [_as_text(protected[c]) for c in group_columns]
+    parts = [_named_values(_as_text(protected[c]), c, (group_value_names or {}).get(c), name) for c in group_columns]
+    unknown_named = sorted(set(group_value_names or {}) - set(group_columns))
+    if unknown_named:
+        raise DatasetError(f"dataset '{name}': group_value_names names column(s) {unknown_named}, which are not group "
+                           f"columns {group_columns}")
     group_text = parts[0]
     for part in parts[1:]:
         group_text = group_text + GROUP_SEPARATOR + part
@@ -298,6 +307,17 @@ def check_features(features: pd.DataFrame, protected: pd.DataFrame, name: str) -
         warn_line(f"dataset '{name}': {sum(missing.values())} missing value(s) in {len(missing)} feature column(s) "
                   f"({detail}) are filled (numbers: the training median; text: a '(missing)' category)")
     return missing
+
+
+def _named_values(text: pd.Series, column: str, names: dict | None, dataset: str) -> pd.Series:
+    if not names:
+        return text
+    names = {str(k).strip(): str(v) for k, v in names.items()}
+    unnamed = sorted(set(text.unique()) - set(names))
+    if unnamed:
+        raise DatasetError(f"dataset '{dataset}': group column '{column}' has values {unnamed[:10]} without a name in "
+                           f"group_value_names.{column}; add them")
+    return text.map(names).astype("string")
 
 
 def _apply_min_group_size(group_text: pd.Series, name: str, min_size: int, policy: str):

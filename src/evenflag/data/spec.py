@@ -61,6 +61,8 @@ class DatasetSpec:
     na_values: list[str] = field(default_factory=list)
     min_group_size: int = 0
     small_groups: str = "refuse"
+    # Names for coded group values, per group column: {race: {"1": black, "0": other}}
+    group_value_names: dict[str, dict[str, str]] = field(default_factory=dict)
     licence: str = ""
     citation: str = ""
     description: str = ""

@@ -23,12 +23,12 @@ import numpy as np
 from evenflag.errors import MetricInputError
 
 
-class UndefinedMetricWarning(UserWarning):
+class MetricNaNWarning(UserWarning):
     """A metric is undefined for these inputs and was reported as NaN."""
 
 
 def warn_undefined(key: str, reason: str) -> None:
-    warnings.warn(f"{key} is undefined ({reason}); reported as NaN", UndefinedMetricWarning, stacklevel=3)
+    warnings.warn(f"{key} is undefined ({reason}); reported as NaN", MetricNaNWarning, stacklevel=3)
 
 
 @dataclass

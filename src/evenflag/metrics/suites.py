@@ -34,7 +34,7 @@ from evenflag.metrics import bootstrap
 from evenflag.metrics.detection import detection_from_counts
 from evenflag.metrics.facts import MIN_BOOTSTRAP_COUNT, fact
 from evenflag.metrics.flag_fairness import flag_fairness_from_counts, flag_tests, rate_counts
-from evenflag.metrics.inputs import FlagRule, MetricInput, UndefinedMetricWarning, counts_from_cells, rethreshold
+from evenflag.metrics.inputs import FlagRule, MetricInput, MetricNaNWarning, counts_from_cells, rethreshold
 from evenflag.metrics.keys import group_key
 from evenflag.metrics.intervals import (
     delong_from_blocks,
@@ -111,7 +111,7 @@ def evaluate(families, label, score, flag, group, embedding=None, n_bootstrap: i
     ``<key>.ci_degenerate`` = 1 marks an interval of zero width or one resting
     on a group with no flags (or none of the label compared). ``rule`` says how
     the flags were set from the scores, so that resamples can set them again.
-    An undefined metric is NaN with an :class:`UndefinedMetricWarning` naming
+    An undefined metric is NaN with an :class:`MetricNaNWarning` naming
     it, never an exception.
 
     Examples
@@ -136,14 +136,14 @@ def evaluate(families, label, score, flag, group, embedding=None, n_bootstrap: i
         values.update({k: float(v[0]) for k, v in out.items()})
     if "flag_fairness" in families:
         with warnings.catch_warnings():
-            warnings.simplefilter("ignore", UndefinedMetricWarning)
+            warnings.simplefilter("ignore", MetricNaNWarning)
             tests = flag_tests(counts)  # the point-estimate counts, not computed again
         notes.update({k: v for k, v in tests.items() if isinstance(v, str)})
         values.update({k: float(v) for k, v in tests.items() if not isinstance(v, str)})
         notes["reference_group"] = inputs.group_names[inputs.reference]
     for key, value in values.items():
         if np.isnan(value):
-            warnings.warn(f"{key} is undefined ({_reason(key)}); reported as NaN", UndefinedMetricWarning, stacklevel=2)
+            warnings.warn(f"{key} is undefined ({_reason(key)}); reported as NaN", MetricNaNWarning, stacklevel=2)
     intervals = n_bootstrap > 0
     if "leakage" in families and inputs.embedding is not None:
         values.update(leakage(inputs.embedding, group, seed=seed, level=level, n_bootstrap=n_bootstrap,
