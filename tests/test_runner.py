@@ -49,6 +49,9 @@ def test_sweep_artifacts_hold_scores_and_config(sweep):
     run = runs_of(client, "grid")[0]
     names = {a.path for a in client.list_artifacts(run.info.run_id)}
     assert names == {"config.yaml", "scores.parquet"}
+    # Stored once: in the store's artifact root, not also in the job's output folder.
+    stored = list((cwd / "outputs").rglob("scores.parquet"))
+    assert len(stored) == len(runs_of(client, "grid")) and all("tracking" in p.parts for p in stored)
     local = client.download_artifacts(run.info.run_id, "scores.parquet", str(cwd))
     scores = pd.read_parquet(local)
     assert list(scores.columns) == ["row_id", "label", "group", "score", "flag"]
@@ -60,10 +63,13 @@ def test_sweep_artifacts_hold_scores_and_config(sweep):
 
 def test_relaunch_skips_finished_runs(sweep):
     cwd, _ = sweep
+    folders = set((cwd / "outputs" / "sweeps" / "grid").iterdir())
     result = evenflag(cwd, "run", "-m", *SMALL, "study=grid", "seed=0,1", "detector=isolation_forest,local_outlier_factor")
     assert result.returncode == 0
     assert "0 done, 4 skipped" in result.stdout
     assert len(runs_of(client_for(cwd), "grid")) == 4
+    assert set((cwd / "outputs" / "sweeps" / "grid").iterdir()) == folders  # no new folder when nothing ran
+    assert "[HYDRA]" not in result.stdout + result.stderr  # one progress line per job, evenflag's own
 
 
 def test_rerun_forces_and_scores_are_deterministic(sweep):
@@ -197,6 +203,8 @@ def test_sweep_to_an_mlflow_server_on_loopback(tmp_path):
     (["detector.n_estimators=abc"], "The 'n_estimators' parameter of IsolationForest must be an int in the range [1, inf). Got 'abc'"),
     (["-m", "detector.n_estimators=10,-5"], "detector.n_estimators=-5: sklearn.ensemble.IsolationForest: The 'n_estimators' parameter"),
     (["detector=deep_svdd", "detector.epochs=0"], "detector.epochs must be a whole number of at least 1, got 0"),
+    (["-sc", "install=bash"], "-sc is not supported by evenflag run; see evenflag run --hydra-help"),
+    (["--config-dir", "no/such/dir", "seed=0"], "--config-dir no/such/dir: no such folder"),
     (["detector=deep_svdd", "detector.foo=1"],
      "DeepSVDDDetector accepts: objective, nu, eps, warmup_epochs, pretrain_epochs, hidden, embedding_dim, activation, "
      "dropout, epochs, batch_size, lr"),
@@ -256,3 +264,11 @@ def test_study_configs_compose_and_count(experiment, jobs):
     assert cfg.study == experiment
     assert _count_jobs([f"experiment={experiment}"], cfg) == jobs
     assert cfg.hydra.launcher.n_jobs == 2 and "Joblib" in cfg.hydra.launcher._target_
+
+
+def test_hydra_help_lists_only_what_run_supports(tmp_path):
+    result = evenflag(tmp_path, "run", "--hydra-help")
+    assert result.returncode == 0
+    assert "--config-dir" in result.stdout and "parallel" in result.stdout
+    for unsupported in ("--shell-completion", "--config-path", "--config-name", "install=bash"):
+        assert unsupported not in result.stdout

@@ -9,7 +9,9 @@ failed.
 
 from __future__ import annotations
 
+import json
 import os
+import shutil
 import signal
 import socket
 import sys
@@ -28,8 +30,17 @@ from evenflag.runner.config import register
 
 register()
 
-PASS_THROUGH = ("--help", "-h", "--hydra-help", "--info", "-i", "--cfg", "-c", "--shell-completion", "-sc",
-                "--version", "--resolve", "-p", "--package")
+PASS_THROUGH = ("--help", "-h", "--hydra-help", "--info", "-i", "--cfg", "-c", "--version", "--resolve", "-p",
+                "--package")
+HYDRA_HELP = """evenflag run: the Hydra options it supports
+  -m, --multirun           run every combination of comma-separated values
+  --config-dir DIR         another folder of config groups (before or after the overrides; repeatable)
+  --cfg job [--resolve]    print the composed run config instead of running
+  --info defaults-tree     show which yaml files make up the config (also: searchpath, plugins)
+  --help                   the run config and its config groups
+  hydra/launcher=NAME      how jobs run: {launchers}
+Shell completion is not offered: Hydra's completion cannot see the `run` sub-command."""
+UNSUPPORTED = ("--shell-completion", "-sc", "--experimental-rerun", "--run", "-r")
 
 
 @hydra.main(config_path=str(config_dir()), config_name="config", version_base="1.3")
@@ -41,6 +52,15 @@ def hydra_app(cfg: DictConfig) -> None:
 
 def launch(argv: list[str]) -> int:
     """Validate, prepare the store, run Hydra, summarise. Returns the exit code."""
+    unsupported = next((a for a in argv if a.split("=")[0] in UNSUPPORTED), None)
+    if unsupported:
+        raise ConfigError(f"{unsupported.split('=')[0]} is not supported by evenflag run; see evenflag run --hydra-help "
+                          "for the options it supports")
+    if "--hydra-help" in argv:
+        # Hydra's own page lists --config-path, --config-name and shell completion,
+        # which evenflag run does not support; this one lists what it does.
+        print(HYDRA_HELP.format(launchers=", ".join(_options("hydra/launcher", []))))
+        return 0
     if any(a in PASS_THROUGH or a.split("=")[0] in PASS_THROUGH for a in argv):
         return _call_hydra(argv)
     multirun = any(a in ("-m", "--multirun") for a in argv)
@@ -79,12 +99,15 @@ def launch(argv: list[str]) -> int:
     path = folder / f"{time.strftime('%Y%m%d-%H%M%S')}-{os.getpid()}.jsonl"
     path.parent.mkdir(parents=True, exist_ok=True)
     launch_id = f"{socket.gethostname()}-{os.getpid()}-{time.time_ns()}"
+    output_parent = Path(OmegaConf.select(first, "hydra.sweep.dir" if multirun else "hydra.run.dir")).parent
+    outputs_before = set(output_parent.iterdir()) if output_parent.is_dir() else set()
     previous = signal.signal(signal.SIGTERM, _terminate)
     interrupted = "the launch ended"
     try:
         os.environ[ledger.LEDGER_ENV] = str(path)
         os.environ[ledger.TOTAL_ENV] = str(total)
         os.environ[ledger.START_ENV] = str(time.time())
+        os.environ[ledger.PLAN_ENV] = json.dumps(_detector_plan(overrides, first, total) if multirun else {})
         # Jobs write the store the launcher prepared, even in other processes,
         # and watch the launcher: workers whose launcher dies end their runs.
         os.environ["EVENFLAG_LAUNCH_DIR"] = str(Path.cwd())
@@ -107,11 +130,15 @@ def launch(argv: list[str]) -> int:
         except Exception:  # the store is gone or unreachable: the lease closes them later
             pass
         path.unlink(missing_ok=True)
-        for key in (ledger.LEDGER_ENV, ledger.TOTAL_ENV, ledger.START_ENV, LAUNCHER_PID_ENV, LAUNCHER_HOST_ENV,
+        for key in (ledger.LEDGER_ENV, ledger.TOTAL_ENV, ledger.START_ENV, ledger.PLAN_ENV, LAUNCHER_PID_ENV, LAUNCHER_HOST_ENV,
                     LAUNCH_ID_ENV):
             os.environ.pop(key, None)
 
     counts = {s: sum(e["status"] == s for e in entries) for s in ("done", "skipped", "failed")}
+    if entries and counts["skipped"] == len(entries) == total and output_parent.is_dir():
+        # Nothing ran: do not leave a new, empty output folder per relaunch.
+        for folder in set(output_parent.iterdir()) - outputs_before:
+            shutil.rmtree(folder, ignore_errors=True)
     elsewhere = sum(e["status"] == "skipped" and "another launch" in e.get("summary", "") for e in entries)
     print(f"\nstudy '{first.study}': {counts['done']} done, {counts['skipped'] - elsewhere} skipped (already finished), "
           + (f"{elsewhere} running in another launch, " if elsewhere else "")
@@ -308,6 +335,20 @@ def _check_plain_values(cfg: DictConfig, plain_values: list[str]) -> None:
             check_values(run)
         except ConfigError as exc:
             raise ConfigError(f"{text}: {exc}") from exc
+
+
+def _detector_plan(overrides: list[str], cfg: DictConfig, total: int) -> dict[str, int]:
+    """Jobs per detector option in a sweep (each swept option gets an equal share)."""
+    swept = next((list(item.sweep_string_iterator()) for item in _parse(overrides)
+                  if item.is_sweep_override() and item.get_key_element().lstrip("+~") == "detector"), None)
+    params = OmegaConf.select(cfg, "hydra.sweeper.params") or {}
+    if swept is None and "detector" in params:
+        parsed = _parse([f"detector={params['detector']}"])[0]
+        swept = list(parsed.sweep_string_iterator()) if parsed.is_sweep_override() else None
+    if not swept:
+        choice = OmegaConf.select(cfg, "hydra.runtime.choices.detector")
+        return {str(choice): total}
+    return {name: total // len(swept) for name in swept}
 
 
 def _count_jobs(overrides: list[str], cfg: DictConfig) -> int:

@@ -7,6 +7,7 @@ one-line reason and the sweep goes on.
 from __future__ import annotations
 
 import os
+import shutil
 import time
 from pathlib import Path
 
@@ -75,14 +76,16 @@ def run_job(cfg: DictConfig) -> str:
         # Claim the cell before computing: a finished run or a live claim elsewhere means skip.
         run_id, busy = tracker.claim(fp, name, tags, rerun=bool(cfg.rerun))
         if run_id is None:
-            ledger.record({"status": "skipped", "name": name, "summary": busy})
+            ledger.record({"status": "skipped", "name": name, "summary": busy, "detector": _detector_choice()})
             return "skipped"
         beat = Heartbeat(lambda: tracker.heartbeat(run_id),
                          on_orphaned=lambda: tracker.kill(run_id, "its launcher died (the parent process was killed)"))
         # Params first, so a run that fails below still says what it was.
         tracker.log(run_id, flatten({k: v for k, v in resolved.items() if k not in ("tracking", "tags")}), {}, {})
         out = execute(cfg)
-        artifacts = _output_dir() / "artifacts"  # under the Hydra job's own output folder
+        # Artifacts are written once, into the tracking store's artifact root; the
+        # staging folder under the job's output folder is removed once they are logged.
+        artifacts = _output_dir() / "artifacts"
         artifacts.mkdir(parents=True, exist_ok=True)
         (artifacts / "config.yaml").write_text(OmegaConf.to_yaml(resolved))
         out.scores.to_parquet(artifacts / "scores.parquet", index=False)
@@ -97,13 +100,14 @@ def run_job(cfg: DictConfig) -> str:
         if out.history:
             tracker.log_history(run_id, out.history)
         tracker.log_artifacts(run_id, artifacts)
+        shutil.rmtree(artifacts, ignore_errors=True)
         beat.stop()
         tracker.finish(run_id)
         if cfg.rerun:
             tracker.supersede(fp, run_id)
         summary = ", ".join(f"{k} {out.metrics[k]:.3f}" for k in ("auroc", "flag_rate_ratio") if k in out.metrics)
         ledger.record({"status": "done", "name": name, "run_id": run_id, "summary": summary,
-                       "seconds": round(time.time() - started, 2)})
+                       "seconds": round(time.time() - started, 2), "detector": _detector_choice()})
         return "done"
     except (KeyboardInterrupt, SystemExit) as exc:  # Ctrl-C, or SIGTERM turned into SystemExit by the launcher
         if tracker is not None and run_id is not None:
@@ -119,7 +123,8 @@ def run_job(cfg: DictConfig) -> str:
                 tracker.fail(run_id, message)
             except Exception as tracking_exc:  # the store itself failed; say so, keep going
                 message += f" (and the failure could not be recorded: {format_exception(tracking_exc)})"
-        ledger.record({"status": "failed", "name": name, "run_id": run_id, "message": message})
+        ledger.record({"status": "failed", "name": name, "run_id": run_id, "message": message,
+                       "seconds": round(time.time() - started, 2), "detector": _detector_choice()})
         if not os.environ.get(ledger.LEDGER_ENV):
             print(f"evenflag: run failed: {message}")
         return "failed"

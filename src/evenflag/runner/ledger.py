@@ -12,6 +12,7 @@ from pathlib import Path
 LEDGER_ENV = "EVENFLAG_LEDGER"
 TOTAL_ENV = "EVENFLAG_SWEEP_TOTAL"
 START_ENV = "EVENFLAG_SWEEP_START"
+PLAN_ENV = "EVENFLAG_SWEEP_PLAN"   # {detector: jobs} of the launch, for the time estimate
 
 
 def record(entry: dict) -> None:
@@ -34,11 +35,44 @@ def record(entry: dict) -> None:
         return
     total = int(os.environ.get(TOTAL_ENV, "0") or 0)
     elapsed = time.time() - float(os.environ.get(START_ENV, time.time()))
-    eta = elapsed / done * (total - done) if total and done else 0.0
+    plan = json.loads(os.environ.get(PLAN_ENV) or "{}")
+    eta = estimate_left(read(path), plan, elapsed) if plan else (
+        elapsed / done * (total - done) if total and done else 0.0)
     of = f"/{total}" if total else ""
     detail = entry.get("summary") or entry.get("message") or ""
     print(f"[{done}{of}] {entry['status']:<8} {entry.get('name', '')}  {detail}  "
           f"elapsed {_clock(elapsed)}, eta {_clock(eta)}", flush=True)
+
+
+def estimate_left(entries: list[dict], plan: dict[str, int], elapsed: float) -> float:
+    """Seconds left: the jobs still to come of each detector times the median
+    time of that detector's finished jobs (of all finished jobs before the
+    first one of it ends), scaled by wall time per job-second so far (which
+    folds in parallel workers and per-job overhead). A sweep mixing fast and
+    slow detectors is not priced at its first job's speed.
+
+    >>> entries = [{"detector": "fast", "status": "done", "seconds": 1.0},
+    ...            {"detector": "slow", "status": "done", "seconds": 30.0}]
+    >>> estimate_left(entries, {"fast": 3, "slow": 2}, elapsed=31.0)
+    32.0
+    """
+    timed = [e for e in entries if e.get("status") in ("done", "failed") and e.get("seconds")]
+    if not timed:
+        return 0.0
+    seconds = [float(e["seconds"]) for e in timed]
+    per_detector: dict[str, list[float]] = {}
+    for entry in timed:
+        per_detector.setdefault(str(entry.get("detector")), []).append(float(entry["seconds"]))
+    seen = {str(name): sum(str(e.get("detector")) == str(name) for e in entries) for name in plan}
+    job_seconds = sum(max(int(count) - seen[str(name)], 0) * _median(per_detector.get(str(name), seconds))
+                      for name, count in plan.items())
+    return job_seconds * (elapsed / sum(seconds))
+
+
+def _median(values: list[float]) -> float:
+    ordered = sorted(values)
+    middle = len(ordered) // 2
+    return ordered[middle] if len(ordered) % 2 else (ordered[middle - 1] + ordered[middle]) / 2
 
 
 def read(path: str | Path) -> list[dict]:
