@@ -299,3 +299,36 @@ def test_datasets_show_takes_overrides_and_config_dir(tmp_path):
     assert "test 500 rows" in shown.stdout
     _one_error_line(evenflag(tmp_path, "datasets", "show", "german_credit", "protocol.test_fraction=2"),
                     "protocol.test_fraction must be between 0 and 1")
+
+
+def test_tradeoff_labels_do_not_overlap():
+    """Weights whose points nearly coincide get labels whose boxes do not overlap
+    (boxes measured by matplotlib's own renderer); placed naively, they would."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from evenflag.report.figures import label_points
+
+    x = np.array([0.900, 0.9005, 0.901, 0.9012, 0.95])
+    y = np.array([0.800, 0.801, 0.8005, 0.802, 0.60])
+    texts = [f"w={w:g}" for w in (0, 0.5, 1, 2, 5)]
+    fig, ax = plt.subplots(figsize=(3.3, 3.1))
+    ax.plot(x, y, "o")
+    ax.set_ylim(0, 1.04)
+    renderer = fig.canvas.get_renderer()
+    naive = [ax.annotate(t, (a, b), textcoords="offset points", xytext=(4, 3), fontsize=7) for t, a, b in zip(texts, x, y)]
+    from matplotlib.text import Text
+
+    for note in naive:
+        note.update_positions(renderer)
+    boxes = [Text.get_window_extent(n, renderer) for n in naive]
+    assert any(boxes[i].overlaps(boxes[j]) for i in range(5) for j in range(i))
+    for note in naive:
+        note.remove()
+    placed = label_points(ax, x, y, texts)
+    boxes = [Text.get_window_extent(n, renderer) for n in placed]  # the words, without leader lines
+    assert not any(boxes[i].overlaps(boxes[j]) for i in range(5) for j in range(i))
+    assert [n.get_text() for n in placed] == texts
+    plt.close(fig)

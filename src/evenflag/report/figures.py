@@ -77,14 +77,14 @@ def tradeoff_figure(table: pd.DataFrame, out: Path, detection: str = "auroc", fa
     plt = _plt()
     datasets = sorted(cells["dataset"].unique())
     fig, axes = plt.subplots(1, len(datasets), figsize=(3.3 * len(datasets), 3.1), squeeze=False)
+    labels = []
     for ax, dataset in zip(axes[0], datasets):
         part = cells[cells["dataset"] == dataset].sort_values("weight")
         x, y = part[f"{detection}.mean"].to_numpy(), part[f"{fairness}.mean"].to_numpy()
         ax.errorbar(x, y, xerr=clipped_errors(x, part[f"{detection}.ci"]), yerr=clipped_errors(y, part[f"{fairness}.ci"]),
                     fmt="o", color="0.45", ecolor="0.8", elinewidth=0.8, markersize=4, capsize=2,
                     label="weight (mean, 95% CI)")
-        for xi, yi, w in zip(x, y, part["weight"]):
-            ax.annotate(f"{w:g}", (xi, yi), textcoords="offset points", xytext=(4, 3), fontsize=7)
+        labels.append((ax, x, y, [f"w={w:g}" for w in part["weight"]]))
         front = pareto_front(x, y)
         if len(front):
             ax.plot(x[front], y[front], "-", color="0.1", linewidth=1.4, marker="D", markersize=5, label="Pareto front")
@@ -95,9 +95,38 @@ def tradeoff_figure(table: pd.DataFrame, out: Path, detection: str = "auroc", fa
         ax.set_ylabel(fairness.replace("_", " "))
     axes[0][0].legend(loc="lower left", fontsize=7, frameon=False)
     fig.tight_layout()
+    for ax, x, y, texts in labels:  # after the layout, so that no label moves once placed
+        label_points(ax, x, y, texts)
     paths = _save(fig, out, "tradeoff")
     plt.close(fig)
     return paths
+
+
+def label_points(ax, x, y, texts, fontsize: float = 7, gap: float = 2.0):
+    """Annotate points so that no two labels overlap: each label starts to the
+    upper right of its point and moves up (then down), in steps of its own
+    height, until its box clears every label already placed; a moved label gets
+    a thin leader line to its point."""
+    from matplotlib.text import Text
+
+    fig = ax.figure
+    renderer = fig.canvas.get_renderer()
+    placed = []
+    order = np.argsort(np.asarray(y, dtype=float), kind="stable")
+    annotations = [None] * len(texts)
+    for i in order:
+        for step in [0, *[s for k in range(1, 40) for s in (k, -k)]]:
+            note = ax.annotate(texts[i], (x[i], y[i]), textcoords="offset points", xytext=(4, 3 + step * (fontsize + gap)),
+                               fontsize=fontsize, arrowprops=None if step == 0 else
+                               {"arrowstyle": "-", "color": "0.6", "linewidth": 0.5, "shrinkA": 0, "shrinkB": 2})
+            note.update_positions(renderer)  # an annotation's place is computed only when drawn
+            box = Text.get_window_extent(note, renderer)  # the words only, not the leader line
+            if not any(box.overlaps(other) for other in placed):
+                placed.append(box)
+                annotations[i] = note
+                break
+            note.remove()
+    return annotations
 
 
 def _stacked(label: str) -> str:
