@@ -105,7 +105,8 @@ def run_job(cfg: DictConfig) -> str:
         tracker.finish(run_id)
         if cfg.rerun:
             tracker.supersede(fp, run_id)
-        summary = ", ".join(f"{k} {out.metrics[k]:.3f}" for k in ("auroc", "flag_rate_ratio") if k in out.metrics)
+        summary = f"run {run_id[:8]}  " + ", ".join(
+            f"{k} {out.metrics[k]:.3f}" for k in ("auroc", "flag_rate_ratio") if k in out.metrics)
         ledger.record({"status": "done", "name": name, "run_id": run_id, "summary": summary,
                        "seconds": round(time.time() - started, 2), "detector": _detector_choice()})
         return "done"
