@@ -85,24 +85,39 @@ def test_adversarial_conforms():
     assert_conforms(AdversarialDetector, base={"name": "deep_svdd", "hidden": [16], "embedding_dim": 4, "epochs": 3})
 
 
+def test_new_fair_detectors_conform():
+    from evenflag.detectors.neural import DistributionMatchingDetector, FairODDetector
+
+    assert_conforms(DistributionMatchingDetector, base={"name": "autoencoder", "hidden": [16], "embedding_dim": 4,
+                                                        "epochs": 3})
+    assert_conforms(FairODDetector, hidden=[16], embedding_dim=4, epochs=3)
+
+
 # ---------------------------------------------------------------- the adversary's effect
-def test_adversary_lowers_leakage_and_raises_flag_rate_ratio():
-    # Generated demo data with a strong group shift of normal rows; 3 seeds.
-    # The margins (0.05 on each mean) are ours: common practice, no source.
-    leak_base, leak_adv, ratio_base, ratio_adv = [], [], [], []
+def test_distribution_matching_lowers_leakage_and_raises_flag_rate_ratio():
+    """On the generated demo data at their defaults (3 seeds), the
+    distribution-matching detector lowers the strong-probe leakage (the larger
+    of a logistic and a boosted probe) by at least 0.05 against plain Deep SVDD
+    and raises the flag-rate ratio at the top 5%. The margins are ours: common
+    practice, no source. (The adversarial detector and FairOD do not reach this
+    on these data; scripts/fair_training_experiments.py prints the figures.)"""
+    from evenflag.detectors.base import build_detector
+
+    spec = get_spec("synthetic_claims")
+    dataset = load_dataset(spec)
+    results = {"deep_svdd": [], "distribution_matching": []}
     for seed in (0, 1, 2):
-        data = _synthetic(2.0, rows=8000, seed=seed)
-        for weight, leak, ratio in ((0.0, leak_base, ratio_base), (3.0, leak_adv, ratio_adv)):
-            det = AdversarialDetector(base={"name": "deep_svdd", "epochs": 30}, weight=weight, seed=seed)
-            det.fit(data.X_train, data.group_train)
+        data = prepare(dataset, make_split(dataset, ProtocolSpec(), seed))
+        for name in results:
+            det = build_detector({"name": name}, seed=seed).fit(data.X_train, data.group_train)
             scores = det.anomaly_score(data.X_test)
-            flags = flag_scores(ThresholdSpec("top_fraction", 0.2), scores)
+            flags = flag_scores(ThresholdSpec("top_fraction", 0.05), scores)
             values = evaluate(["flag_fairness", "leakage"], data.label_test, scores, flags, data.group_test,
                               embedding=det.embed(data.X_test), seed=seed).values
-            leak.append(values["leakage_auroc"])
-            ratio.append(values["flag_rate_ratio"])
-    assert np.mean(leak_adv) < np.mean(leak_base) - 0.05, (leak_base, leak_adv)
-    assert np.mean(ratio_adv) > np.mean(ratio_base) + 0.05, (ratio_base, ratio_adv)
+            results[name].append((values["leakage_auroc"], values["flag_rate_ratio"]))
+    base, fair = np.array(results["deep_svdd"]), np.array(results["distribution_matching"])
+    assert fair[:, 0].mean() < base[:, 0].mean() - 0.05, (base, fair)
+    assert fair[:, 1].mean() > base[:, 1].mean(), (base, fair)
 
 
 def test_weight_zero_matches_the_base_detector():
@@ -167,3 +182,95 @@ def test_collapsed_embedding_is_refused():
 def test_adversary_needs_groups():
     with pytest.raises(DetectorError, match="needs the group"):
         AdversarialDetector(base={"name": "deep_svdd", **SMALL}).fit(np.zeros((10, 3), dtype=np.float32))
+
+
+# ---------------------------------------------------------------- fairness terms against outside computations
+def test_mmd_equals_the_published_unbiased_estimator():
+    """Gretton et al., JMLR 2012, eq. 3: MMD^2_u = sum_{i!=j} k(x_i,x_j)/(m(m-1))
+    + sum_{i!=j} k(y_i,y_j)/(n(n-1)) - 2 sum_{i,j} k(x_i,y_j)/(mn), computed here
+    directly with numpy loops for a sum of Gaussian kernels."""
+    from evenflag.detectors.neural.fairness import gaussian_kernel_mmd2
+
+    rng = np.random.default_rng(5)
+    x, y = rng.normal(size=(13, 3)), rng.normal(0.7, 1.3, size=(9, 3))
+    widths = [0.5, 1.5]
+
+    def k(a, b):
+        return sum(np.exp(-np.sum((a - b) ** 2) / (2 * s * s)) for s in widths)
+
+    m, n = len(x), len(y)
+    expected = (sum(k(x[i], x[j]) for i in range(m) for j in range(m) if i != j) / (m * (m - 1))
+                + sum(k(y[i], y[j]) for i in range(n) for j in range(n) if i != j) / (n * (n - 1))
+                - 2 * sum(k(a, b) for a in x for b in y) / (m * n))
+    got = float(gaussian_kernel_mmd2(torch.from_numpy(x), torch.from_numpy(y), widths))
+    assert got == pytest.approx(expected, rel=1e-10)
+    # The median heuristic: widths are multiples of the median distance between distinct rows (numpy here).
+    from evenflag.detectors.neural.fairness import gaussian_kernel
+
+    z = np.vstack([x, y])
+    d = np.sqrt(((z[:, None] - z[None]) ** 2).sum(-1))
+    median = np.median(d[np.triu_indices(len(z), 1)])
+    np.testing.assert_allclose(gaussian_kernel(torch.from_numpy(z), [1.0]).numpy(), np.exp(-d ** 2 / (2 * median ** 2)),
+                               rtol=1e-6, atol=1e-9)
+
+
+def test_fairod_parity_term_equals_numpy_corrcoef():
+    """The statistical-parity term is |Pearson r| of scores and group membership
+    (numpy.corrcoef as the reference), averaged over groups' indicators."""
+    from evenflag.detectors.neural.fairod import parity_correlation
+
+    rng = np.random.default_rng(6)
+    scores = rng.normal(size=200)
+    codes = rng.integers(0, 3, 200)
+    expected = np.mean([abs(np.corrcoef(scores, (codes == g).astype(float))[0, 1]) for g in range(3)])
+    got = float(parity_correlation(torch.from_numpy(scores), torch.from_numpy(codes), 3))
+    assert got == pytest.approx(expected, rel=1e-9)
+    two = rng.integers(0, 2, 200)  # binary: both indicators give the paper's single |r|
+    assert float(parity_correlation(torch.from_numpy(scores), torch.from_numpy(two), 2)) == pytest.approx(
+        abs(np.corrcoef(scores, two)[0, 1]), rel=1e-9)
+
+
+def test_mmd_batches_hold_enough_rows_of_every_group():
+    from evenflag.detectors.neural.fairness import MMDPenalty
+
+    rng = np.random.default_rng(0)
+    group = np.where(rng.random(1000) < 0.03, "small", "large")
+    state = MMDPenalty(1.0, [1.0], 16, 0, 0, 0).start(group, DeepSVDDDetector(), torch.device("cpu"))
+    batches = state.batches(1000, 256, torch.Generator().manual_seed(0))
+    for batch in batches:
+        assert (group[batch.numpy()] == "small").sum() >= 16 and (group[batch.numpy()] == "large").sum() >= 16
+    assert set(np.concatenate([b.numpy() for b in batches])) == set(range(1000))  # every row is used
+
+
+@pytest.mark.parametrize("config", [
+    {"name": "distribution_matching", "base": {"name": "deep_svdd", **SMALL}},
+    {"name": "distribution_matching", "base": {"name": "autoencoder", **SMALL}},
+])
+def test_weight_zero_equals_the_base_exactly(config):
+    from evenflag.detectors.base import build_detector
+
+    data = _synthetic(1.0, rows=1500)
+    base = build_detector(dict(config["base"]), seed=3).fit(data.X_train)
+    fair = build_detector({**config, "weight": 0.0}, seed=3).fit(data.X_train, data.group_train)
+    np.testing.assert_array_equal(fair.anomaly_score(data.X_test), base.anomaly_score(data.X_test))
+
+
+def test_fairod_weights_zero_is_the_plain_autoencoder():
+    from evenflag.detectors.neural import FairODDetector
+
+    data = _synthetic(1.0, rows=1500)
+    base = AutoencoderDetector(**SMALL, seed=2).fit(data.X_train)
+    fair = FairODDetector(**SMALL, weight=0.0, fidelity_weight=0.0, seed=2).fit(data.X_train, data.group_train)
+    np.testing.assert_array_equal(fair.anomaly_score(data.X_test), base.anomaly_score(data.X_test))
+
+
+@pytest.mark.parametrize("name", ["distribution_matching", "fairod"])
+def test_fair_methods_refuse_a_group_too_small_to_train_on(name):
+    from evenflag.detectors.base import build_detector
+
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(300, 4)).astype(np.float32)
+    group = np.array(["many"] * 299 + ["one"])
+    config = {"name": name, **({"base": {"name": "autoencoder", **SMALL}} if name != "fairod" else SMALL)}
+    with pytest.raises(DetectorError, match="training rows per group value; too few: {'one': 1}"):
+        build_detector(config, seed=0).fit(X, group)

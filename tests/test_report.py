@@ -54,10 +54,9 @@ def test_table_numbers_equal_a_direct_computation(store):
     table = pd.read_csv(cwd / "report" / "table.csv")
     runs = [r for r in runs_of(client_for(cwd), "rep") if r.info.status == "FINISHED"]
     for dataset in ("german_credit", "synthetic_claims"):
-        for detector in ("isolation_forest", "CovarianceDistanceDetector"):
+        for detector in ("isolation_forest", "covariance_distance"):  # the config option chosen, tagged at run time
             values = np.array([r.data.metrics["auroc"] for r in runs if r.data.params["dataset.name"] == dataset
-                               and (r.data.params.get("detector.name") == detector
-                                    or r.data.params.get("detector._target_", "").endswith(detector))])
+                               and r.data.tags["evenflag.detector"] == detector])
             row = table[(table["dataset"] == dataset) & (table["detector"] == detector)].iloc[0]
             assert row["auroc.n"] == len(values) == 3
             assert row["auroc.mean"] == pytest.approx(values.mean(), rel=1e-5)
@@ -69,9 +68,9 @@ def test_table_numbers_equal_a_direct_computation(store):
 def test_failed_cells_are_shown_not_dropped(store):
     cwd, stdout = store
     markdown = (cwd / "report" / "table.md").read_text()
-    always = next(line for line in markdown.splitlines() if "AlwaysFails" in line)
+    always = next(line for line in markdown.splitlines() if "always_fails" in line)
     assert "failed" in always and "| 0 (3) |" in always
-    odd = next(line for line in markdown.splitlines() if "FailsOnOddSeed" in line)
+    odd = next(line for line in markdown.splitlines() if "fails_on_odd_seed" in line)
     assert "| 2 (1) |" in odd
     assert "four-fifths rule is a rule of thumb" in markdown
 

@@ -34,6 +34,8 @@ BUILT_IN = {
     "autoencoder": "evenflag.detectors.neural:AutoencoderDetector",
     "deep_svdd": "evenflag.detectors.neural:DeepSVDDDetector",
     "adversarial": "evenflag.detectors.neural:AdversarialDetector",
+    "distribution_matching": "evenflag.detectors.neural:DistributionMatchingDetector",
+    "fairod": "evenflag.detectors.neural:FairODDetector",
 }
 
 
