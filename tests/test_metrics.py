@@ -376,7 +376,7 @@ def test_group_keys_stay_distinct_and_valid_mlflow_keys(tmp_path):
         assert group_from_key(key.split("/", 1)[1]) == name
     assert len({k for k in values if k.startswith("flag_rate/") and "." not in k.split("/", 1)[1]}) == 4
     client = MlflowClient(tracking_uri=f"sqlite:///{tmp_path / 'm.db'}")
-    run = client.create_run(client.create_experiment("keys"))
+    run = client.create_run(client.create_experiment("keys", artifact_location=(tmp_path / "artifacts").as_uri()))
     client.log_batch(run.info.run_id, metrics=[Metric(k, float(v), 0, 0) for k, v in values.items()
                                                if np.isfinite(v) and "/" in k])
     assert set(client.get_run(run.info.run_id).data.metrics) >= {f"flag_rate/{group_key(n)}" for n in ["x|y", "x-y"]}

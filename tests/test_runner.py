@@ -108,7 +108,8 @@ def test_stale_running_run_is_closed_on_next_launch(tmp_path):
     db = tmp_path / "outputs" / "tracking"
     db.mkdir(parents=True)
     client = MlflowClient(tracking_uri=f"sqlite:///{db / 'mlflow.db'}")
-    experiment = client.create_experiment("stale")
+    # artifacts beside the store, as evenflag does (MLflow's default is ./mlruns of the test's cwd)
+    experiment = client.create_experiment("stale", artifact_location=(db / "artifacts" / "stale").as_uri())
     finished = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
     dead_pid = finished.stdout.strip()  # that process has exited
     run = client.create_run(experiment, tags={"evenflag.host": socket.gethostname(), "evenflag.pid": dead_pid})
