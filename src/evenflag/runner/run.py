@@ -9,6 +9,7 @@ import os
 import random
 import sys
 import time
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -21,8 +22,8 @@ from evenflag.data.preprocessing import PreparedData, prepare
 from evenflag.data.protocol import ProtocolSpec, base_rates, hold_out, make_split
 from evenflag.data.registry import load_dataset, to_spec
 from evenflag.detectors.base import build_detector
-from evenflag.errors import DetectorError
-from evenflag.metrics.inputs import FlagRule
+from evenflag.errors import DetectorError, warn_line
+from evenflag.metrics.inputs import FlagRule, MetricNaNWarning
 from evenflag.metrics.suites import MetricsSpec, check_spec, evaluate
 from evenflag.thresholds import ThresholdSpec, check_spec as check_threshold, flag_scores
 
@@ -148,10 +149,17 @@ def execute(cfg) -> RunOutput:
     embedding = None
     if "leakage" in metrics_spec.families and hasattr(detector, "embed"):
         embedding = np.asarray(detector.embed(data.X_test))
-    result = evaluate(metrics_spec.families, data.label_test, test_scores, flags, data.group_test,
-                      embedding=embedding, n_bootstrap=metrics_spec.bootstrap, seed=seed, level=metrics_spec.level,
-                      resample=metrics_spec.resample, reference_group=metrics_spec.reference_group,
-                      rule=flag_rule(threshold, mitigation_kind))
+    with warnings.catch_warnings(record=True) as undefined:
+        warnings.simplefilter("always", MetricNaNWarning)
+        result = evaluate(metrics_spec.families, data.label_test, test_scores, flags, data.group_test,
+                          embedding=embedding, n_bootstrap=metrics_spec.bootstrap, seed=seed,
+                          level=metrics_spec.level, resample=metrics_spec.resample,
+                          reference_group=metrics_spec.reference_group, rule=flag_rule(threshold, mitigation_kind))
+    for caught in undefined:  # one line each (Python's warnings print the source line too); others as they were
+        if issubclass(caught.category, MetricNaNWarning):
+            warn_line(str(caught.message))
+        else:
+            warnings.warn_explicit(caught.message, caught.category, caught.filename, caught.lineno)
     result.notes["natural_base_rates"] = ", ".join(
         f"{g}={r:.4f}" for g, r in base_rates(dataset.label, dataset.group.to_numpy()).items())
     timings["metrics"] = time.perf_counter() - tick
