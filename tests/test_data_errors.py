@@ -13,11 +13,15 @@ from evenflag.data.registry import load_dataset
 from evenflag.errors import DatasetError, EvenflagError, ProtocolError, UnknownNameError
 
 
+def _file_spec(path):
+    return {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
+            "anomaly_values": ["fraud"], "group": ["region"]}
+
+
 def _claims(tmp_path, frame, name="claims.csv"):
     path = tmp_path / name
     frame.to_csv(path, index=False)
-    return {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
-            "anomaly_values": ["fraud"], "group": ["region"]}
+    return _file_spec(path)
 
 
 @pytest.fixture
@@ -63,8 +67,7 @@ def test_nan_in_group_column(tmp_path, frame):
 def test_empty_file(tmp_path):
     path = tmp_path / "claims.csv"
     path.write_text("")
-    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
-            "anomaly_values": ["fraud"], "group": ["region"]}
+    spec = _file_spec(path)
     with pytest.raises(DatasetError, match="is empty"):
         load_dataset(spec)
 
@@ -72,15 +75,13 @@ def test_empty_file(tmp_path):
 def test_unreadable_parquet(tmp_path):
     path = tmp_path / "claims.parquet"
     path.write_bytes(b"this is not parquet")
-    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
-            "anomaly_values": ["fraud"], "group": ["region"]}
+    spec = _file_spec(path)
     with pytest.raises(DatasetError, match=r"could not parse parquet data \(.*magic bytes.*\).*read as parquet"):
         load_dataset(spec)
 
 
 def test_missing_file(tmp_path):
-    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(tmp_path / "nope.csv")}, "label": "outcome",
-            "anomaly_values": ["fraud"], "group": ["region"]}
+    spec = _file_spec(tmp_path / "nope.csv")
     with pytest.raises(DatasetError, match="does not exist"):
         load_dataset(spec)
 
@@ -162,15 +163,13 @@ def test_duplicated_group_header_is_refused(tmp_path, frame):
     path = tmp_path / "claims.csv"
     # pandas renames the second 'region' header to 'region.1' (pandas.read_csv documentation, mangle_dupe_cols)
     frame[["amount", "region", "region", "outcome"]].to_csv(path, index=False)
-    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
-            "anomaly_values": ["fraud"], "group": ["region"]}
+    spec = _file_spec(path)
     with pytest.raises(DatasetError, match=r"feature column 'region.1' repeats group column 'region'.*dataset.drop=\[region.1\]"):
         load_dataset(spec)
 
 
 def test_directory_as_data_path(tmp_path):
-    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(tmp_path)}, "label": "outcome",
-            "anomaly_values": ["fraud"], "group": ["region"]}
+    spec = _file_spec(tmp_path)
     with pytest.raises(DatasetError, match=r"is a folder; set source.path to a file in it \(.csv, .csv.gz, .parquet\)"):
         load_dataset(spec)
 
@@ -178,8 +177,7 @@ def test_directory_as_data_path(tmp_path):
 def test_unsupported_format_names_the_supported_ones(tmp_path, frame):
     path = tmp_path / "claims.xlsx"
     path.write_bytes(b"PK\x03\x04 not really a spreadsheet")
-    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
-            "anomaly_values": ["fraud"], "group": ["region"]}
+    spec = _file_spec(path)
     with pytest.raises(DatasetError, match=r"cannot tell the format of 'claims.xlsx'.*supported: .csv, .csv.gz, .parquet"):
         load_dataset(spec)
 
@@ -188,8 +186,7 @@ def test_latin1_file_names_the_encoding_option(tmp_path, frame):
     frame["region"] = np.where(frame["region"] == "north", "Nordm\u00e4rkte", "S\u00fcd")
     path = tmp_path / "claims.csv"
     frame.to_csv(path, index=False, encoding="latin-1")
-    spec = {"name": "my_claims", "source": {"kind": "file", "path": str(path)}, "label": "outcome",
-            "anomaly_values": ["fraud"], "group": ["region"]}
+    spec = _file_spec(path)
     with pytest.raises(DatasetError, match=r"not utf-8 text \(byte 0x[0-9a-f]{2} at position \d+\); set dataset.source.encoding"):
         load_dataset(spec)
     spec["source"]["encoding"] = "latin-1"

@@ -257,7 +257,8 @@ def test_a_setting_shared_by_swept_detectors(tmp_path):
     assert len(runs_of(client_for(tmp_path), "shared")) == 2
 
 
-@pytest.mark.parametrize("experiment, jobs", [("demo", 12), ("reference", 200), ("weight_tradeoff", 54)])
+@pytest.mark.parametrize("experiment, jobs", [("demo", 12), ("reference", 200), ("weight_tradeoff", 54),
+                                             ("fair_methods", 375)])
 def test_study_configs_compose_and_count(experiment, jobs):
     from evenflag.runner.app import _compose, _count_jobs
 
