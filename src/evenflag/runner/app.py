@@ -130,8 +130,8 @@ def launch(argv: list[str]) -> int:
         except Exception:  # the store is gone or unreachable: the lease closes them later
             pass
         path.unlink(missing_ok=True)
-        for key in (ledger.LEDGER_ENV, ledger.TOTAL_ENV, ledger.START_ENV, ledger.PLAN_ENV, LAUNCHER_PID_ENV, LAUNCHER_HOST_ENV,
-                    LAUNCH_ID_ENV):
+        for key in (ledger.LEDGER_ENV, ledger.TOTAL_ENV, ledger.START_ENV, ledger.PLAN_ENV, LAUNCHER_PID_ENV,
+                    LAUNCHER_HOST_ENV, LAUNCH_ID_ENV):
             os.environ.pop(key, None)
 
     counts = {s: sum(e["status"] == s for e in entries) for s in ("done", "skipped", "failed")}
@@ -241,7 +241,8 @@ def _route_detector_name(overrides: list[str], extra_dirs: list[str]) -> list[st
                           "(a registered name without a yaml: add configs/detector/<name>.yaml with 'name: <name>')")
     name = str(item.value())
     if name in _options("detector", extra_dirs):
-        return [f"detector={name}" if i == index else o for i, o in enumerate(overrides) if i == index or keys[i] != "detector.name"]
+        return [f"detector={name}" if i == index else o for i, o in enumerate(overrides)
+                if i == index or keys[i] != "detector.name"]
     from evenflag.detectors.base import resolve_detector_class
 
     resolve_detector_class(name)  # unknown names stop here, with the list of registered ones
