@@ -72,6 +72,25 @@ def test_relaunch_skips_finished_runs(sweep):
     assert "[HYDRA]" not in result.stdout + result.stderr  # one progress line per job, evenflag's own
 
 
+def test_an_all_skipped_relaunch_keeps_the_folders_of_a_launch_beside_it(sweep):
+    """A folder another launch creates while an all-skipped relaunch runs (same
+    directory, same study) must survive: only the relaunch's own folder goes."""
+    cwd, _ = sweep
+    ledgers = cwd / "outputs" / ".ledgers"
+    relaunch = subprocess.Popen([sys.executable, "-m", "evenflag.cli", "run", "-m", *SMALL, "study=grid", "seed=0,1",
+                                 "detector=isolation_forest,local_outlier_factor"], cwd=cwd, stdout=subprocess.PIPE,
+                                stderr=subprocess.PIPE, text=True, env={**os.environ, "PYTHONPATH": str(REPO)})
+    deadline = time.time() + 120
+    while not list(ledgers.glob("*.jsonl")) and time.time() < deadline and relaunch.poll() is None:
+        time.sleep(0.01)  # the relaunch has recorded its first job
+    beside = cwd / "outputs" / "sweeps" / "grid" / "another-launch"
+    beside.mkdir()
+    out, err = relaunch.communicate(timeout=300)
+    assert relaunch.returncode == 0 and "0 done, 4 skipped" in out, out + err
+    assert beside.is_dir()
+    beside.rmdir()
+
+
 def test_rerun_forces_and_scores_are_deterministic(sweep):
     cwd, _ = sweep
     result = evenflag(cwd, "run", *SMALL, "study=grid", "seed=0", "detector=isolation_forest", "rerun=true")

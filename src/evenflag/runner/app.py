@@ -99,8 +99,6 @@ def launch(argv: list[str]) -> int:
     path = folder / f"{time.strftime('%Y%m%d-%H%M%S')}-{os.getpid()}.jsonl"
     path.parent.mkdir(parents=True, exist_ok=True)
     launch_id = f"{socket.gethostname()}-{os.getpid()}-{time.time_ns()}"
-    output_parent = Path(OmegaConf.select(first, "hydra.sweep.dir" if multirun else "hydra.run.dir")).parent
-    outputs_before = set(output_parent.iterdir()) if output_parent.is_dir() else set()
     previous = signal.signal(signal.SIGTERM, _terminate)
     interrupted = "the launch ended"
     try:
@@ -135,10 +133,13 @@ def launch(argv: list[str]) -> int:
             os.environ.pop(key, None)
 
     counts = {s: sum(e["status"] == s for e in entries) for s in ("done", "skipped", "failed")}
-    if entries and counts["skipped"] == len(entries) == total and output_parent.is_dir():
-        # Nothing ran: do not leave a new, empty output folder per relaunch.
-        for folder in set(output_parent.iterdir()) - outputs_before:
-            shutil.rmtree(folder, ignore_errors=True)
+    if entries and counts["skipped"] == len(entries) == total:
+        # Nothing ran: do not leave a new, empty output folder per relaunch (only
+        # this launch's folders, as its jobs recorded them; a launch beside it keeps its own).
+        for folder in ledger.output_dirs_made(entries, multirun):
+            here = Path.cwd().resolve()
+            if folder.resolve() != here and folder.resolve() not in here.parents:  # never the launch folder itself
+                shutil.rmtree(folder, ignore_errors=True)
     elsewhere = sum(e["status"] == "skipped" and "another launch" in e.get("summary", "") for e in entries)
     print(f"\nstudy '{first.study}': {counts['done']} done, {counts['skipped'] - elsewhere} skipped (already finished), "
           + (f"{elsewhere} running in another launch, " if elsewhere else "")

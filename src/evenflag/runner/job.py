@@ -50,6 +50,12 @@ def _output_dir() -> Path:
         return Path.cwd()
 
 
+def _record(entry: dict) -> None:
+    """A ledger line with what the launcher needs: the detector (for the time
+    estimate) and this job's output folder (removed if nothing in the launch ran)."""
+    ledger.record({**entry, "detector": _detector_choice(), "output_dir": str(_output_dir())})
+
+
 def run_job(cfg: DictConfig) -> str:
     from evenflag.runner.app import format_exception
     from evenflag.runner.run import execute, limit_threads
@@ -76,7 +82,7 @@ def run_job(cfg: DictConfig) -> str:
         # Claim the cell before computing: a finished run or a live claim elsewhere means skip.
         run_id, busy = tracker.claim(fp, name, tags, rerun=bool(cfg.rerun))
         if run_id is None:
-            ledger.record({"status": "skipped", "name": name, "summary": busy, "detector": _detector_choice()})
+            _record({"status": "skipped", "name": name, "summary": busy})
             return "skipped"
         beat = Heartbeat(lambda: tracker.heartbeat(run_id),
                          on_orphaned=lambda: tracker.kill(run_id, "its launcher died (the parent process was killed)"))
@@ -107,8 +113,8 @@ def run_job(cfg: DictConfig) -> str:
             tracker.supersede(fp, run_id)
         summary = f"run {run_id[:8]}  " + ", ".join(
             f"{k} {out.metrics[k]:.3f}" for k in ("auroc", "flag_rate_ratio") if k in out.metrics)
-        ledger.record({"status": "done", "name": name, "run_id": run_id, "summary": summary,
-                       "seconds": round(time.time() - started, 2), "detector": _detector_choice()})
+        _record({"status": "done", "name": name, "run_id": run_id, "summary": summary,
+                 "seconds": round(time.time() - started, 2)})
         return "done"
     except (KeyboardInterrupt, SystemExit) as exc:  # Ctrl-C, or SIGTERM turned into SystemExit by the launcher
         if tracker is not None and run_id is not None:
@@ -124,8 +130,8 @@ def run_job(cfg: DictConfig) -> str:
                 tracker.fail(run_id, message)
             except Exception as tracking_exc:  # the store itself failed; say so, keep going
                 message += f" (and the failure could not be recorded: {format_exception(tracking_exc)})"
-        ledger.record({"status": "failed", "name": name, "run_id": run_id, "message": message,
-                       "seconds": round(time.time() - started, 2), "detector": _detector_choice()})
+        _record({"status": "failed", "name": name, "run_id": run_id, "message": message,
+                 "seconds": round(time.time() - started, 2)})
         if not os.environ.get(ledger.LEDGER_ENV):
             print(f"evenflag: run failed: {message}")
         return "failed"

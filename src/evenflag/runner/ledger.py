@@ -28,15 +28,16 @@ def record(entry: dict) -> None:
             os.write(fd, line)
         finally:
             os.close(fd)
-        done = len(read(path))
+        entries = read(path)
     except OSError:
         # A job that cannot reach the ledger (another machine without the launch
         # directory) still finished: the tracking store has it; only the summary misses it.
         return
+    done = len(entries)
     total = int(os.environ.get(TOTAL_ENV, "0") or 0)
     elapsed = time.time() - float(os.environ.get(START_ENV, time.time()))
     plan = json.loads(os.environ.get(PLAN_ENV) or "{}")
-    eta = estimate_left(read(path), plan, elapsed) if plan else (
+    eta = estimate_left(entries, plan, elapsed) if plan else (
         elapsed / done * (total - done) if total and done else 0.0)
     of = f"/{total}" if total else ""
     detail = entry.get("summary") or entry.get("message") or ""
@@ -73,6 +74,19 @@ def _median(values: list[float]) -> float:
     ordered = sorted(values)
     middle = len(ordered) // 2
     return ordered[middle] if len(ordered) % 2 else (ordered[middle - 1] + ordered[middle]) / 2
+
+
+def output_dirs_made(entries: list[dict], multirun: bool) -> set[Path]:
+    """The output folders the jobs of this launch wrote (each entry records its
+    job's folder): the sweep folders (a job folder's parent) with -m, else the
+    run folders. Never a folder of another launch running beside this one.
+
+    >>> jobs = [{"output_dir": "out/sweeps/s/t1/0"}, {"output_dir": "out/sweeps/s/t1/1"}]
+    >>> [str(p) for p in output_dirs_made(jobs, multirun=True)]
+    ['out/sweeps/s/t1']
+    """
+    folders = {Path(e["output_dir"]) for e in entries if e.get("output_dir")}
+    return {f.parent for f in folders} if multirun else folders
 
 
 def read(path: str | Path) -> list[dict]:
