@@ -7,6 +7,7 @@ datasets fetch [NAME..]  pre-fetch package-mirrored datasets into the cache
 datasets clear [NAME]    delete parsed tables from the cache
 datasets show NAME       one dataset and a preview of its train/test split
 run [overrides]          one run, or a sweep with -m (Hydra multirun)
+audit FILE [overrides]   judge the scores a deployed detector gave, from a CSV or Parquet export
 check-detector MOD:CLS   run the detector conformance checks on a plugin
 """
 
@@ -189,6 +190,12 @@ def cmd_report(args) -> int:
     return 0
 
 
+def cmd_audit(args) -> int:
+    from evenflag.runner.audit_job import compose_audit_config, run_audit
+
+    return run_audit(compose_audit_config(args.file, args.overrides, args.config_dir))
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="evenflag", description="Fairness benchmarks of anomaly detectors.")
     sub = parser.add_subparsers(dest="command", required=True)
@@ -213,6 +220,15 @@ def build_parser() -> argparse.ArgumentParser:
 
     run = sub.add_parser("run", help="one run, or a sweep with -m; arguments are Hydra overrides", add_help=False)
     run.set_defaults(func=None)
+    audit = sub.add_parser("audit", help="judge the scores a deployed detector gave, from a CSV or Parquet export")
+    audit.add_argument("file", help="the exported file: one row per case with a score and group column(s)")
+    audit.add_argument("overrides", nargs="*",
+                       help="settings as key=value: score=COL group=[COL,...] label=COL flag=COL period=COL "
+                            "weight=COL id=COL lower_is_suspicious=true threshold.fraction=0.02 study=NAME "
+                            "(see configs/audit/default.yaml)")
+    audit.add_argument("--config-dir", action="append", default=[], metavar="DIR",
+                       help="another folder of config groups (e.g. your own audit/*.yaml: audit=NAME)")
+    audit.set_defaults(func=cmd_audit)
     report = sub.add_parser("report", help="tables, figures and a memo from tracked runs (never re-trains)")
     report.add_argument("--study", action="append", required=True, help="study name; repeat for several")
     report.add_argument("--tracking-uri", default=None,

@@ -18,6 +18,8 @@ Interval methods:
                compared is at least ``MIN_BOOTSTRAP_COUNT``, else the closed
                form named after the slash (``rate/wilson`` ...)
 ``cv``         interval of the out-of-fold probe predictions (leakage)
+``change``     audits: Wald interval on the log of a ratio of two independent
+               periods' Katz ratios (audit/compute.py)
 ``none``       point estimate only: a largest-minus-smallest or lowest-over-
                highest summary over groups, or a test statistic; such a value
                cannot fall below parity, so a percentile interval of it never
@@ -74,6 +76,16 @@ FACTS: dict[str, MetricFact] = {
                                       "Fisher's exact p of the highest against the lowest flag rate"),
     "flips_to_parity": MetricFact("flips to parity", "lower", 0, INF, 0.0, "none",
                                   "fewest flags to move between groups so the four-fifths rule passes"),
+    "weighted_flag_rate": MetricFact("weighted flag rate", "parity", 0, 1, None, "none",
+                                     "a group's flagged weight over its total weight (audits with a weight column)"),
+    "weighted_flag_rate_ratio": MetricFact("weighted flag-rate ratio", "higher", 0, 1, 1.0, "none",
+                                           "lowest over highest weighted group flag rate"),
+    "ratio_change": MetricFact("ratio change", "parity", 0, INF, 1.0, "change",
+                               "a group's flag-rate ratio to the reference in the last period over that in the first"),
+    "ratio_change_p": MetricFact("ratio change p", "higher", 0, 1, None, "none",
+                                 "two-sided Wald p of ratio_change (no change in the ratio)"),
+    "ratio_change_p_holm": MetricFact("ratio change p (Holm)", "higher", 0, 1, None, "none",
+                                      "ratio_change_p adjusted by Holm's method over the groups"),
     # error fairness
     "hit_rate": MetricFact("hit rate", "parity", 0, 1, None, "rate/wilson", "share of a group's anomalies flagged"),
     "false_flag_rate": MetricFact("false-flag rate", "lower", 0, 1, None, "rate/wilson",
@@ -84,6 +96,8 @@ FACTS: dict[str, MetricFact] = {
                                  "largest minus smallest group false-flag rate"),
     "group_precision_gap": MetricFact("precision gap", "lower", 0, 1, 0.0, "none",
                                       "largest minus smallest group precision"),
+    "precision_diff": MetricFact("precision difference", "parity", -1, 1, 0.0, "newcombe",
+                                 "a group's precision minus the reference group's (audits: reviewed flags only)"),
     "hit_rate_diff": MetricFact("hit-rate difference", "parity", -1, 1, 0.0, "rate/newcombe",
                                 "a group's hit rate minus the reference group's"),
     "false_flag_diff": MetricFact("false-flag difference", "parity", -1, 1, 0.0, "rate/newcombe",

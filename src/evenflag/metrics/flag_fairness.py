@@ -155,8 +155,16 @@ def flips_to_parity(flagged, rows, line: float = FOUR_FIFTHS) -> float:
     if b * int(flagged[lo]) * int(rows[hi]) >= a * int(flagged[hi]) * int(rows[lo]):
         return 0.0                                       # the rule already passes
     best = None
+    n_all = int(rows.sum())
     for h, n_h in enumerate(rows):                       # the highest rate is k / n_h
-        k = np.arange(1, n_h + 1, dtype=np.int64)[:, None]
+        # Only k with sum(upper) >= total (upper <= k n_g / n_h) and sum(lower) <= total
+        # (lower >= line k n_g / n_h) can be feasible: a range of about a quarter
+        # of the flags instead of every count up to n_h.
+        k_min = max(1, (total * int(n_h)) // n_all)
+        k_max = min(int(n_h), (total * b * int(n_h)) // (a * n_all))
+        if k_min > k_max:
+            continue
+        k = np.arange(k_min, k_max + 1, dtype=np.int64)[:, None]
         upper = np.minimum((k * rows) // n_h, rows)                    # floor(M n_g)
         lower = (a * k * rows + b * n_h - 1) // (b * n_h)              # ceil(line M n_g)
         feasible = (lower <= upper).all(axis=1) & (lower.sum(axis=1) <= total) & (upper.sum(axis=1) >= total)

@@ -19,6 +19,7 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 
 from evenflag.errors import MetricInputError
 
@@ -71,13 +72,19 @@ class MetricInput:
         flag = np.zeros(n, dtype=bool) if flag is None else np.asarray(flag).astype(bool)
         if group is None:
             raise MetricInputError("group is required: one group value per row")
-        group = np.asarray(group)
+        if isinstance(getattr(group, "dtype", None), pd.CategoricalDtype):
+            names, codes = _categorical_codes(pd.Categorical(group))  # no text per row: fast on millions of rows
+            group = codes
+        else:
+            group = np.asarray(group)
+            names = None
         for name, values in (("score", score), ("flag", flag), ("group", group)):
             if values.ndim != 1 or len(values) != n:
                 raise MetricInputError(f"{name} has shape {values.shape}; expected ({n},) like label")
         if not np.isfinite(score).all():
             raise MetricInputError(f"score has {int((~np.isfinite(score)).sum())} NaN or infinite values; the detector must return finite scores")
-        names, codes = np.unique(group.astype(str), return_inverse=True)
+        if names is None:
+            names, codes = np.unique(group.astype(str), return_inverse=True)
         if len(names) < 2:
             raise MetricInputError(f"group has a single value {list(names)}; fairness metrics need at least two groups")
         if embedding is not None:
@@ -160,6 +167,19 @@ class MetricInput:
         cells = np.bincount(cell, minlength=self.n_groups * 2 * bins * 2).reshape(self.n_groups, 2, bins, 2)
         bin_mean = np.bincount(row_bin, weights=self.score, minlength=bins) / np.bincount(row_bin, minlength=bins)
         return cells, bin_mean
+
+
+def _categorical_codes(group: pd.Categorical) -> tuple[np.ndarray, np.ndarray]:
+    """(names, codes) of a categorical as ``np.unique`` of its text would give
+    them: the values present, sorted as text."""
+    if (group.codes < 0).any():
+        raise MetricInputError(f"group has {int((group.codes < 0).sum())} missing values; give every row a group")
+    present = np.flatnonzero(np.bincount(group.codes, minlength=len(group.categories)))
+    texts = np.array([str(group.categories[i]) for i in present])
+    order = np.argsort(texts, kind="stable")
+    rank = np.full(len(group.categories), -1, dtype=np.int64)
+    rank[present[order]] = np.arange(len(present))
+    return texts[order], rank[group.codes]
 
 
 def counts_from_cells(cells: np.ndarray, bin_mean: np.ndarray, group_names: list[str], reference: int = 0) -> "Counts":

@@ -118,6 +118,11 @@ def _load(client, uri, studies, where, experiments) -> RunTable:
                 "groups": tags.get("evenflag.groups", ""),
                 "natural_base_rates": tags.get("evenflag.natural_base_rates", ""),
                 "reference_group": tags.get("evenflag.reference_group", ""),
+                "kind": tags.get("evenflag.kind", "run"),   # "audit" for `evenflag audit` of an exported file
+                "audit_file": tags.get("evenflag.audit.file", ""),
+                "audit_rows": tags.get("evenflag.audit.rows", ""),
+                "audit_periods": tags.get("evenflag.audit.periods", ""),
+                "labels_known": tags.get("evenflag.labels_known", ""),
             }
             keys_seen.update(params, tags)
             if where and not _matches(where, params, tags):
@@ -138,7 +143,8 @@ def _load(client, uri, studies, where, experiments) -> RunTable:
     runs = deduplicate(with_settings(runs))
     identity = {"run_id", "study", "status", "dataset", "detector", "weight", "seed", "error", "data_sha256",
                 "git_commit", "protocol", "threshold", "groups", "start_time", "config", "cell_id", "settings",
-                "natural_base_rates", "reference_group"}
+                "natural_base_rates", "reference_group", "kind", "audit_file", "audit_rows", "audit_periods",
+                "labels_known"}
     metrics = sorted(c for c in runs.columns if c not in identity)
     return RunTable(runs=runs, metric_columns=metrics, uri=uri, studies=list(studies))
 

@@ -317,3 +317,39 @@ def friedman_for(table: pd.DataFrame, metric: str):
     except ValueError:
         return None
 
+
+
+def trend_figure(periods: pd.DataFrame, group_names: list[str], out: Path, title: str = "") -> dict[str, Path]:
+    """Flag rate of every group per period (with its interval) above the
+    flag-rate ratio per period, with the four-fifths line: an audit over time."""
+    from evenflag.metrics.keys import group_key
+
+    plt = _plt()
+    fig, (top, bottom) = plt.subplots(2, 1, figsize=(7.0, 5.2), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
+    x = np.arange(len(periods))
+    for i, name in enumerate(group_names):
+        key = f"flag_rate/{group_key(name)}"
+        if key not in periods:
+            continue
+        rate = periods[key].to_numpy(dtype=float)
+        low = periods.get(f"{key}.ci_low", pd.Series(np.nan, index=periods.index)).to_numpy(dtype=float)
+        high = periods.get(f"{key}.ci_high", pd.Series(np.nan, index=periods.index)).to_numpy(dtype=float)
+        errors = np.vstack([np.nan_to_num(rate - low), np.nan_to_num(high - rate)]).clip(min=0)
+        top.errorbar(x + (i - (len(group_names) - 1) / 2) * 0.06, rate, yerr=errors, label=name, capsize=2,
+                     linestyle=LINESTYLES[i % len(LINESTYLES)], marker=MARKERS[i % len(MARKERS)], markersize=4)
+    top.set_ylabel("flag rate")
+    top.legend(fontsize=7, frameon=False, ncols=min(len(group_names), 4))
+    if title:
+        top.set_title(title, fontsize=9)
+    if "flag_rate_ratio" in periods:
+        bottom.plot(x, periods["flag_rate_ratio"].to_numpy(dtype=float), marker="o", color="0.1")
+    bottom.axhline(FOUR_FIFTHS, color="0.35", linestyle="--", linewidth=1)
+    bottom.text(x[-1] if len(x) else 0, FOUR_FIFTHS, " four-fifths line", va="bottom", ha="right", fontsize=7,
+                color="0.35")
+    bottom.set_ylim(0, 1.05)
+    bottom.set_ylabel("flag-rate ratio\n(lowest / highest)")
+    bottom.set_xticks(x, [str(p) for p in periods["period"]], rotation=45 if len(x) > 6 else 0, ha="right" if len(x) > 6 else "center")
+    bottom.set_xlabel("period")
+    paths = _save(fig, out, "trend")
+    plt.close(fig)
+    return paths

@@ -32,8 +32,15 @@ def metadata_lines(runs: RunTable) -> list[str]:
              f"{int((frame['status'] == 'FAILED').sum())} failed; one run per configuration and seed)",
              f"- seeds: {', '.join(map(str, sorted(set(frame['seed']))))}",
              f"- protocol: {', '.join(sorted(set(frame['protocol'])))}; threshold: {', '.join(sorted(set(frame['threshold'])))}",
-             f"- code version (git commit): {', '.join(sorted(set(c[:12] for c in frame['git_commit'] if c)))}",
-             "- datasets (sha256 of the raw bytes):"]
+             f"- code version (git commit): {', '.join(sorted(set(c[:12] for c in frame['git_commit'] if c)))}"]
+    audits = frame[frame["kind"] == "audit"] if "kind" in frame else frame.iloc[:0]
+    if len(audits):
+        lines.append("- audited files (scores exported from a deployed detector, not trained here):")
+        for _, row in audits.iterrows():
+            periods = f"; periods {row['audit_periods'].replace('..', ' to ')}" if row["audit_periods"] else ""
+            lines.append(f"  - `{row['audit_file']}`: {int(row['audit_rows'] or 0):,} rows, sha256 `{row['data_sha256']}`"
+                         f"{periods}; labels known: {row['labels_known'] or 'n/a'} (run {row['run_id'][:8]})")
+    lines.append("- datasets (sha256 of the raw bytes):")
     for dataset, rows in frame.groupby("dataset"):
         hashes = sorted(set(rows["data_sha256"]))
         groups = sorted(set(g for g in rows["groups"] if g))
@@ -65,10 +72,15 @@ def reading(runs: RunTable, table: pd.DataFrame) -> list[str]:
     table = table.assign(method=method_label(table))
     for dataset, cells in table.groupby("dataset"):
         cells = cells[cells["n_finished"] > 0]
-        if cells.empty or "auroc.mean" not in cells or cells["auroc.mean"].isna().all():
+        if cells.empty:
             continue
-        best = cells.loc[cells["auroc.mean"].idxmax()]
-        sentence = f"On **{dataset}**, {best['method']} has the highest mean AUROC ({_fmt(best['auroc.mean'])})."
+        if "auroc.mean" in cells and cells["auroc.mean"].notna().any():
+            best = cells.loc[cells["auroc.mean"].idxmax()]
+            sentence = f"On **{dataset}**, {best['method']} has the highest mean AUROC ({_fmt(best['auroc.mean'])})."
+        elif "flag_rate_ratio.mean" in cells:  # audits without labels: who is flagged is all there is
+            sentence = f"On **{dataset}** (no AUROC: it needs the outcome of every row)."
+        else:
+            continue
         if "flag_rate_ratio.mean" in cells:
             below = cells[cells["flag_rate_ratio.mean"] < FOUR_FIFTHS]
             if len(below):
