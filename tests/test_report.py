@@ -331,3 +331,33 @@ def test_tradeoff_labels_do_not_overlap():
     assert not any(boxes[i].overlaps(boxes[j]) for i in range(5) for j in range(i))
     assert [n.get_text() for n in placed] == texts
     plt.close(fig)
+
+
+def test_paired_seed_differences_match_scipy_paired_t_interval():
+    # Reference: scipy.stats.ttest_rel(...).confidence_interval(), the 95%
+    # t-interval of the mean paired difference.
+    from evenflag.report.collect import RunTable
+    from evenflag.report.memo import paired_seed_differences, paired_seed_lines
+
+    rng = np.random.default_rng(4)
+    rows = []
+    for dataset in ("a", "b"):
+        for seed in range(5):
+            for detector in ("autoencoder", "fairod", "deep_svdd", "distribution_matching deep_svdd"):
+                rows.append({"dataset": dataset, "detector": detector, "seed": seed, "status": "FINISHED",
+                             "weight": np.nan, "settings": "", "leakage_auroc": rng.uniform(0.5, 0.9),
+                             "flag_rate_ratio": rng.uniform(0.4, 1.0), "auroc": rng.uniform(0.5, 0.9)})
+    runs = RunTable(runs=pd.DataFrame(rows), metric_columns=["leakage_auroc", "flag_rate_ratio", "auroc"], uri="",
+                    studies=["x"])
+    table = paired_seed_differences(runs)
+    assert set(zip(table["variant"], table["base"])) == {("fairod", "autoencoder"),
+                                                         ("distribution_matching deep_svdd", "deep_svdd")}
+    frame = runs.runs
+    for row in table.itertuples():
+        part = frame[frame["dataset"] == row.dataset]
+        a = part[part["detector"] == row.variant].sort_values("seed")[row.metric].to_numpy()
+        b = part[part["detector"] == row.base].sort_values("seed")[row.metric].to_numpy()
+        ci = stats.ttest_rel(a, b).confidence_interval(0.95)
+        assert (row.low, row.high) == pytest.approx((ci.low, ci.high))
+        assert row.difference == pytest.approx((a - b).mean())
+    assert any("beyond seed noise" in line for line in paired_seed_lines(runs))

@@ -128,6 +128,12 @@ def difference_lines(runs: RunTable) -> list[str]:
     return lines
 
 
+# Fairness-aware training: wrappers named before their base, and detectors whose
+# plain base is fixed by the method (FairOD is an autoencoder trained with two extra terms).
+FAIR_WRAPPERS = ("adversarial", "distribution_matching")
+FAIR_DETECTOR_BASE = {"fairod": "autoencoder"}
+
+
 def variant_pairs(methods: list[str]) -> list[tuple[str, str]]:
     """(fairness variant, its plain base) pairs among method labels:
     'adversarial deep_svdd w=1' and 'deep_svdd + group_balanced' against
@@ -140,6 +146,8 @@ def variant_pairs(methods: list[str]) -> list[tuple[str, str]]:
     [('adversarial deep_svdd', 'deep_svdd'), ('deep_svdd + group_balanced', 'deep_svdd')]
     >>> variant_pairs(["adversarial deep_svdd w=0", "adversarial deep_svdd w=1"])
     [('adversarial deep_svdd w=1', 'adversarial deep_svdd w=0')]
+    >>> variant_pairs(["autoencoder", "fairod", "deep_svdd", "distribution_matching deep_svdd"])
+    [('fairod', 'autoencoder'), ('distribution_matching deep_svdd', 'deep_svdd')]
     """
     import re
 
@@ -149,7 +157,10 @@ def variant_pairs(methods: list[str]) -> list[tuple[str, str]]:
         suffix = settings.group(0) if settings else ""
         core = method[: len(method) - len(suffix)]
         plain = re.sub(r" w=[^ ]+$", "", core.split(" + ")[0])
-        plain = plain[len("adversarial "):] if plain.startswith("adversarial ") else plain
+        wrapper = plain.split(" ", 1)[0]
+        if wrapper in FAIR_WRAPPERS and " " in plain:  # 'distribution_matching deep_svdd' -> 'deep_svdd'
+            plain = plain.split(" ", 1)[1]
+        plain = FAIR_DETECTOR_BASE.get(plain, plain)
         for base in (plain + suffix, re.sub(r" w=[^ ]+$", " w=0", core) + suffix):
             if base != method and base in methods:
                 pairs.append((method, base))
@@ -193,6 +204,75 @@ def comparison_lines(table: pd.DataFrame, metrics=("auroc", "flag_rate_ratio", "
     return lines
 
 
+PAIRED_METRICS = ("leakage_auroc", "flag_rate_ratio", "auroc")
+
+
+def paired_seed_differences(runs: RunTable, metrics=PAIRED_METRICS) -> pd.DataFrame:
+    """Per dataset, each fairness variant minus its plain base, paired by seed
+    (a pair shares the split and the initial seed), with a 95% t-interval of the
+    mean difference over the paired seeds. One row per dataset, pair and metric."""
+    from scipy import stats
+
+    from evenflag.report.figures import method_label
+
+    frame = runs.runs[runs.runs["status"] == "FINISHED"]
+    frame = frame.assign(method=method_label(frame))
+    rows = []
+    for dataset, part in frame.groupby("dataset"):
+        for variant, base in variant_pairs(sorted(set(part["method"]))):
+            for metric in metrics:
+                if metric not in part:
+                    continue
+                a = part[part["method"] == variant].set_index("seed")[metric]
+                b = part[part["method"] == base].set_index("seed")[metric]
+                diff = (a - b).dropna()
+                n = len(diff)
+                if n < 2:
+                    continue
+                mean, sd = float(diff.mean()), float(diff.std(ddof=1))
+                half = float(stats.t.ppf(0.975, n - 1)) * sd / np.sqrt(n)
+                rows.append({"dataset": dataset, "variant": variant, "base": base, "metric": metric, "n": n,
+                             "difference": mean, "low": mean - half, "high": mean + half})
+    return pd.DataFrame(rows)
+
+
+def paired_seed_lines(runs: RunTable) -> list[str]:
+    """The memo's per-method verdicts: did the variant lower the leakage and raise
+    the flag-rate ratio beyond seed noise (interval excluding 0), at what AUROC cost."""
+    table = paired_seed_differences(runs)
+    if table.empty:
+        return []
+    names = {"leakage_auroc": "leakage", "flag_rate_ratio": "flag-rate ratio", "auroc": "AUROC"}
+    wanted = {"leakage_auroc": "lower", "flag_rate_ratio": "higher", "auroc": "higher"}
+    lines = []
+    for (dataset, variant, base), part in table.groupby(["dataset", "variant", "base"], sort=True):
+        pieces = []
+        for row in part.itertuples():
+            moved = "higher" if row.low > 0 else "lower" if row.high < 0 else None
+            verdict = (f"{moved} beyond seed noise" if moved else "within seed noise")
+            mark = "" if moved is None else (" (the better direction)" if moved == wanted[row.metric]
+                                             else " (the worse direction)")
+            pieces.append(f"{names[row.metric]} {row.difference:+.3f} [{row.low:+.3f}, {row.high:+.3f}], "
+                          f"{verdict}{mark}")
+        lines.append(f"- {dataset} / {variant} against {base} ({int(part['n'].max())} paired seeds): "
+                     + "; ".join(pieces))
+    summary = []
+    for variant_base, part in table.groupby(table["variant"] + " against " + table["base"]):
+        counts = []
+        for metric, direction in (("leakage_auroc", "lower"), ("flag_rate_ratio", "higher")):
+            rows = part[part["metric"] == metric]
+            if len(rows):
+                good = int((rows["high"] < 0).sum() if direction == "lower" else (rows["low"] > 0).sum())
+                bad = int((rows["low"] > 0).sum() if direction == "lower" else (rows["high"] < 0).sum())
+                counts.append(f"{names[metric]} {direction} beyond seed noise on {good} of {len(rows)} datasets"
+                              + (f" ({bad} the other way)" if bad else ""))
+        cost = part[part["metric"] == "auroc"]["difference"]
+        if len(cost):
+            counts.append(f"median AUROC change {cost.median():+.3f}")
+        summary.append(f"- **{variant_base}**: " + "; ".join(counts) + ".")
+    return summary + ["", "Per dataset (mean paired difference with its 95% t-interval over seeds):", ""] + lines
+
+
 def seed_spread_lines(table: pd.DataFrame, metrics=("auroc", "flag_rate_ratio")) -> list[str]:
     out = []
     for metric in metrics:
@@ -229,6 +309,12 @@ def write_memo(runs: RunTable, table: pd.DataFrame, request, written: dict, html
               "units, seeds are not.", ""]
     parts += comparisons or ["- No test: a comparison needs at least 2 datasets with results for every method "
                              "compared (3 methods for the Friedman test)."]
+    paired = paired_seed_lines(runs)
+    if paired:
+        parts += ["", "## Each fairness variant against its plain base", "",
+                  "Within each dataset, a variant minus its base on the same seeds (the same split and initial "
+                  "seed), with a 95% t-interval over the paired seeds. \"Beyond seed noise\" means the interval "
+                  "excludes 0; with 3 to 5 seeds a real but small change can still fall within it.", "", *paired]
     spread = seed_spread_lines(table)
     if spread:
         parts += ["", "## Spread over seeds", "", *spread]
