@@ -6,7 +6,10 @@ Writes a file of N rows (default 10 million) with a score, two group columns
 throw-away tracking store, and prints the wall time, the peak resident memory
 of that process and their ratios to the goals (60 s, 2 GB).
 
-    .venv/bin/python scripts/bench_audit.py [--rows 10000000] [--keep DIR]
+    .venv/bin/python scripts/bench_audit.py [--rows 10000000] [--keep DIR] [--no-flag-column]
+
+Measured on the 2-core development machine (10 million rows, 200 resamples):
+21-22 s and 1.09 GB with the flag column, 20.7 s and 1.10 GB without it.
 """
 
 from __future__ import annotations
@@ -50,6 +53,8 @@ def main() -> int:
     parser = argparse.ArgumentParser()
     parser.add_argument("--rows", type=int, default=10_000_000)
     parser.add_argument("--keep", default=None, help="folder for the file (reused when present)")
+    parser.add_argument("--no-flag-column", action="store_true",
+                        help="ignore the file's flags: the threshold policy flags the top 5%% of each month")
     args = parser.parse_args()
     folder = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="evenflag-bench-audit-"))
     folder.mkdir(parents=True, exist_ok=True)
@@ -60,7 +65,7 @@ def main() -> int:
         print(f"wrote {path} ({path.stat().st_size / 1e6:.0f} MB) in {time.perf_counter() - started:.1f} s")
     evenflag = Path(sys.executable).with_name("evenflag")
     command = [str(evenflag), "audit", str(path), "score=risk", "group=[sex,region]", "period=month",
-               "flag=flagged", "id=claim_id", "metrics.bootstrap=200", f"out={folder / 'audit-out'}",
+               *([] if args.no_flag_column else ["flag=flagged"]), "id=claim_id", "metrics.bootstrap=200", f"out={folder / 'audit-out'}",
                f"tracking.uri=sqlite:///{folder / 'store' / 'mlflow.db'}", "rerun=true"]
     (folder / "store").mkdir(exist_ok=True)
     started = time.perf_counter()
