@@ -123,6 +123,9 @@ def _load(client, uri, studies, where, experiments) -> RunTable:
                 "audit_rows": tags.get("evenflag.audit.rows", ""),
                 "audit_periods": tags.get("evenflag.audit.periods", ""),
                 "labels_known": tags.get("evenflag.labels_known", ""),
+                "search_trial": tags.get("search_trial", ""),           # set by the search sweeper
+                "search_objectives": tags.get("search_objectives", ""),
+                "search_params": tags.get("search_params", ""),
             }
             keys_seen.update(params, tags)
             if where and not _matches(where, params, tags):
@@ -144,7 +147,8 @@ def _load(client, uri, studies, where, experiments) -> RunTable:
     identity = {"run_id", "study", "status", "dataset", "detector", "weight", "seed", "error", "data_sha256",
                 "git_commit", "protocol", "threshold", "groups", "start_time", "config", "cell_id", "settings",
                 "natural_base_rates", "reference_group", "kind", "audit_file", "audit_rows", "audit_periods",
-                "labels_known"}
+                "labels_known", "search_trial", "search_objectives",
+                "search_params"}
     metrics = sorted(c for c in runs.columns if c not in identity)
     return RunTable(runs=runs, metric_columns=metrics, uri=uri, studies=list(studies))
 

@@ -285,8 +285,8 @@ def seed_spread_lines(table: pd.DataFrame, metrics=("auroc", "flag_rate_ratio"))
 
 def write_memo(runs: RunTable, table: pd.DataFrame, request, written: dict, html: bool = False) -> dict[str, Path]:
     out = Path(request.out)
-    figures = [name for name in ("tradeoff.png", "flag_rates.png", "score_ecdf.png", "critical_difference.png")
-               if name in written]
+    figures = [name for name in ("tradeoff.png", "search_front.png", "flag_rates.png", "score_ecdf.png",
+                                 "critical_difference.png") if name in written]
     parts = [f"# Flagging review: {', '.join(runs.studies)}", "", "## What was run", *metadata_lines(runs), "",
              "## Main table", "", "One row per configuration (runs that differ in any setting but the seed never "
              "share a row; `settings` names what tells rows apart). Mean over seeds with the half-width of a 95% "
@@ -295,6 +295,8 @@ def write_memo(runs: RunTable, table: pd.DataFrame, request, written: dict, html
              "`failed`/`missing` mark cells without results.", "",
              (out / "table.md").read_text().split("\n> ")[0], "## Reading", ""]
     parts += [f"- {line}" for line in reading(runs, table)] or ["- (no finished runs)"]
+    if "pareto.md" in written:
+        parts += ["", "## Search: Pareto-optimal configurations", "", written["pareto.md"].read_text().strip()]
     differences = difference_lines(runs)
     if differences:
         parts += ["", "## Flag rates against the reference group", "",

@@ -44,10 +44,10 @@ UNSUPPORTED = ("--shell-completion", "-sc", "--experimental-rerun", "--run", "-r
 
 
 @hydra.main(config_path=str(config_dir()), config_name="config", version_base="1.3")
-def hydra_app(cfg: DictConfig) -> None:
+def hydra_app(cfg: DictConfig) -> dict:
     from evenflag.runner.job import run_job
 
-    run_job(cfg)
+    return run_job(cfg)
 
 
 def launch(argv: list[str]) -> int:
@@ -79,7 +79,13 @@ def launch(argv: list[str]) -> int:
     _check_plain_values(first, plain_values)
     if not multirun and (len(combos) > 1 or plain_values):
         raise ConfigError("comma-separated values sweep several runs; add -m (evenflag run -m ...)")
+    if multirun and _is_search(first):
+        _check_search(first)
     total = _count_jobs(overrides, first) if multirun else 1
+    if multirun and total == 0 and _is_search(first):
+        print(f"search '{first.study}': all {first.hydra.sweeper.n_trials} trials are done; raise "
+              "hydra.sweeper.n_trials to search further, or report it: evenflag report --study " + str(first.study))
+        return 0
 
     _check_launcher(first)
     from evenflag.runner.lease import LAUNCH_ID_ENV, LAUNCHER_HOST_ENV, LAUNCHER_PID_ENV
@@ -176,7 +182,18 @@ def _check_launcher(cfg: DictConfig) -> None:
                           "(or -1 for one per core)")
 
 
+def _register_plugins() -> None:
+    """evenflag's search sweeper, also where an editable install hides it from
+    Hydra's scan of the hydra_plugins namespace (the import costs no Optuna)."""
+    from hydra.core.plugins import Plugins
+
+    from hydra_plugins.evenflag_search.search_sweeper import SearchSweeper
+
+    Plugins.instance().register(SearchSweeper)
+
+
 def _call_hydra(argv: list[str]) -> int:
+    _register_plugins()
     saved = sys.argv
     sys.argv = ["evenflag run", *argv]
     try:
@@ -289,6 +306,21 @@ def _is_group(key: str, extra_dirs: list[str]) -> bool:
     return any((Path(folder) / key).is_dir() for folder in [config_dir(), *extra_dirs])
 
 
+def _check_search(cfg: DictConfig) -> None:
+    from hydra_plugins.evenflag_search.search_sweeper import SearchError, check_settings
+
+    sweeper = cfg.hydra.sweeper
+    try:
+        check_settings(sweeper.n_trials, sweeper.batch_size, sweeper.sampler,
+                       OmegaConf.to_container(sweeper.objectives) if sweeper.objectives is not None else {})
+    except SearchError as exc:
+        raise ConfigError(str(exc)) from exc
+
+
+def _is_search(cfg: DictConfig) -> bool:
+    return str(OmegaConf.select(cfg, "hydra.sweeper._target_") or "").endswith(".SearchSweeper")
+
+
 def _single_value_combinations(overrides: list[str], extra_dirs: list[str]):
     """Configs to compose so that every value is checked without composing the
     whole grid: the first value of every sweep, then each other value of each
@@ -297,6 +329,8 @@ def _single_value_combinations(overrides: list[str], extra_dirs: list[str]):
     parsed = _parse(overrides)
     base, sweeps, plain = [], [], []
     for original, item in zip(overrides, parsed):
+        if item.is_sweep_override() and not item.is_discrete_sweep():
+            continue  # interval(...) of a search: its ranges are checked by the search sweeper
         if item.is_sweep_override():
             key = item.get_key_element()
             values = [f"{key}={v}" for v in item.sweep_string_iterator()]
@@ -354,6 +388,10 @@ def _detector_plan(overrides: list[str], cfg: DictConfig, total: int) -> dict[st
 
 
 def _count_jobs(overrides: list[str], cfg: DictConfig) -> int:
+    if _is_search(cfg):  # what is left of the search (a relaunch after a kill runs the rest)
+        from hydra_plugins.evenflag_search.search_sweeper import trials_left
+
+        return trials_left(cfg)
     total = 1
     seen = set()
     for item in _parse(overrides):

@@ -56,7 +56,10 @@ def _record(entry: dict) -> None:
     ledger.record({**entry, "detector": _detector_choice(), "output_dir": str(_output_dir())})
 
 
-def run_job(cfg: DictConfig) -> str:
+def run_job(cfg: DictConfig) -> dict:
+    """Run or skip one job; returns {"status": done | skipped | busy | failed,
+    "run_id", "metrics"} (a search sweeper reads its objectives from the metrics;
+    a skipped cell gives back the metrics of its finished run)."""
     from evenflag.runner.app import format_exception
     from evenflag.runner.run import execute, limit_threads
 
@@ -83,7 +86,10 @@ def run_job(cfg: DictConfig) -> str:
         run_id, busy = tracker.claim(fp, name, tags, rerun=bool(cfg.rerun))
         if run_id is None:
             _record({"status": "skipped", "name": name, "summary": busy})
-            return "skipped"
+            finished = tracker.find_finished(fp) if busy.startswith("finished") else None
+            if finished is None:  # running in another launch: no metrics to give back yet
+                return {"status": "busy", "run_id": None, "metrics": {}}
+            return {"status": "skipped", "run_id": finished, "metrics": tracker.metrics_of(finished)}
         beat = Heartbeat(lambda: tracker.heartbeat(run_id),
                          on_orphaned=lambda: tracker.kill(run_id, "its launcher died (the parent process was killed)"))
         # Params first, so a run that fails below still says what it was.
@@ -115,7 +121,7 @@ def run_job(cfg: DictConfig) -> str:
             f"{k} {out.metrics[k]:.3f}" for k in ("auroc", "flag_rate_ratio") if k in out.metrics)
         _record({"status": "done", "name": name, "run_id": run_id, "summary": summary,
                  "seconds": round(time.time() - started, 2)})
-        return "done"
+        return {"status": "done", "run_id": run_id, "metrics": dict(out.metrics)}
     except (KeyboardInterrupt, SystemExit) as exc:  # Ctrl-C, or SIGTERM turned into SystemExit by the launcher
         if tracker is not None and run_id is not None:
             try:
@@ -134,7 +140,7 @@ def run_job(cfg: DictConfig) -> str:
                  "seconds": round(time.time() - started, 2)})
         if not os.environ.get(ledger.LEDGER_ENV):
             print(f"evenflag: run failed: {message}")
-        return "failed"
+        return {"status": "failed", "run_id": run_id, "metrics": {}}
     finally:
         if beat is not None:
             beat.stop()

@@ -133,6 +133,9 @@ class Tracker:
             max_results=1000,
         )
 
+    def metrics_of(self, run_id: str) -> dict[str, float]:
+        return dict(self.client.get_run(run_id).data.metrics)
+
     def find_finished(self, fingerprint: str) -> str | None:
         runs = self._runs_of(fingerprint, "FINISHED")
         return runs[0].info.run_id if runs else None

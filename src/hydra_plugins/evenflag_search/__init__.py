@@ -1,0 +1,1 @@
+"""evenflag's Hydra plugins: the trade-off search sweeper (search_sweeper.py)."""
