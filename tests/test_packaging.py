@@ -28,6 +28,9 @@ def test_wheel_carries_every_module_and_config(wheel):
                for p in (REPO / "configs").rglob("*.yaml")}
     assert modules - names == set(), "a package is missing from pyproject's [tool.setuptools] packages"
     assert configs - names == set()
+    plugins = {f"hydra_plugins/{p.relative_to(REPO / 'src' / 'hydra_plugins').as_posix()}"
+               for p in (REPO / "src" / "hydra_plugins").rglob("*.py")}
+    assert plugins and plugins - names == set(), "the search sweeper is missing from the wheel"
 
 
 def test_installed_wheel_runs_outside_the_checkout(wheel, tmp_path):

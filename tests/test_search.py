@@ -99,6 +99,6 @@ def test_a_killed_search_resumes_without_losing_or_repeating_a_trial(tmp_path):
 
 def test_bad_search_settings_are_one_line(tmp_path):
     result = evenflag(tmp_path, *SEARCH, "study=bad", "hydra.sweeper.n_trials=2", "detector.base.epochs=1",
-                      "hydra.sweeper.objectives.auroc=upward", timeout=300)
+                      "hydra.sweeper.objectives=[auroc:upward]", timeout=300)
     assert result.returncode != 0
-    assert "maximize or minimize" in result.stdout + result.stderr
+    assert "auroc:upward" in result.stdout + result.stderr

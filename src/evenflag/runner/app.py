@@ -312,7 +312,7 @@ def _check_search(cfg: DictConfig) -> None:
     sweeper = cfg.hydra.sweeper
     try:
         check_settings(sweeper.n_trials, sweeper.batch_size, sweeper.sampler,
-                       OmegaConf.to_container(sweeper.objectives) if sweeper.objectives is not None else {})
+                       OmegaConf.to_container(sweeper.objectives) if sweeper.objectives is not None else None)
     except SearchError as exc:
         raise ConfigError(str(exc)) from exc
 

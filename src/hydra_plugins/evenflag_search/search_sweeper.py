@@ -18,13 +18,16 @@ Search space (``hydra.sweeper.params``, Hydra's sweep syntax):
 ``interval(0.1, 30)`` (add ``tag(log, ...)`` for a log scale; integer ends
 give integers), ``range(1, 5)``, ``choice(a, b)`` or ``a,b``; a plain value is
 fixed.
+
+Hydra scans this module without registering it in sys.modules, so it holds no
+dataclass (whose string annotations would then fail to resolve); the settings
+are configs/hydra/sweeper/search.yaml.
 """
 
 from __future__ import annotations
 
 import logging
 import os
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Optional
 
@@ -39,18 +42,6 @@ log = logging.getLogger(__name__)
 
 DIRECTIONS = ("maximize", "minimize")
 SAMPLERS = ("tpe", "nsga2", "random")
-
-
-@dataclass
-class SearchSweeperConf:
-    _target_: str = "hydra_plugins.evenflag_search.search_sweeper.SearchSweeper"
-    n_trials: int = 30
-    batch_size: int = 2
-    sampler: str = "tpe"
-    seed: int = 0
-    storage: Optional[str] = None
-    objectives: dict[str, str] = field(default_factory=lambda: {"auroc": "maximize", "flag_rate_ratio": "maximize"})
-    params: dict[str, str] = field(default_factory=dict)
 
 
 class SearchError(Exception):
@@ -100,6 +91,20 @@ def sampler_of(name: str, seed: int):
     raise SearchError(f"hydra.sweeper.sampler '{name}' is unknown; use one of {', '.join(SAMPLERS)}")
 
 
+def parse_objectives(objectives) -> dict[str, str]:
+    """['auroc:maximize', 'false_flag_gap:minimize'] -> {'auroc': 'maximize', ...}
+    (a mapping is taken as it is)."""
+    if objectives is None:
+        return {"auroc": "maximize", "flag_rate_ratio": "maximize"}
+    if hasattr(objectives, "items"):
+        return {str(k): str(v) for k, v in objectives.items()}
+    out = {}
+    for item in objectives:
+        key, _, direction = str(item).partition(":")
+        out[key.strip()] = direction.strip()
+    return out
+
+
 def check_settings(n_trials, batch_size, sampler, objectives) -> None:
     """One SearchError naming the setting, before any trial runs."""
     if not isinstance(n_trials, int) or not isinstance(batch_size, int) or n_trials < 1 or batch_size < 1:
@@ -107,10 +112,11 @@ def check_settings(n_trials, batch_size, sampler, objectives) -> None:
                           "whole numbers of at least 1")
     if sampler not in SAMPLERS:
         raise SearchError(f"hydra.sweeper.sampler '{sampler}' is unknown; use one of {', '.join(SAMPLERS)}")
-    bad = {k: v for k, v in dict(objectives or {}).items() if str(v) not in DIRECTIONS}
+    objectives = parse_objectives(objectives) if objectives is not None else {}
+    bad = {k: v for k, v in objectives.items() if str(v) not in DIRECTIONS}
     if bad or not objectives:
-        raise SearchError(f"hydra.sweeper.objectives must map metric keys to maximize or minimize; got "
-                          f"{dict(bad or {})}" if bad else "hydra.sweeper.objectives is empty; name at least one "
+        raise SearchError(f"hydra.sweeper.objectives takes metric:maximize or metric:minimize items; got "
+                          f"{', '.join(f'{k}:{v}' for k, v in bad.items())}" if bad else "hydra.sweeper.objectives is empty; name at least one "
                           "metric key with maximize or minimize")
 
 
@@ -130,7 +136,7 @@ class SearchSweeper(Sweeper):
         super().__init__()
         self.n_trials, self.batch_size, self.sampler, self.seed = n_trials, batch_size, sampler, seed
         self.storage = storage
-        self.objectives = dict(objectives or {"auroc": "maximize", "flag_rate_ratio": "maximize"})
+        self.objectives = parse_objectives(objectives)
         self.params = dict(params or {})
         self.launcher = None
         self.config: Optional[DictConfig] = None
