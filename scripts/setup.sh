@@ -35,4 +35,6 @@ if ! .venv/bin/python -c "import torch" >/dev/null 2>&1; then
     .venv/bin/python -m pip install --quiet "torch==$TORCH_VERSION"
   fi
 fi
-.venv/bin/python -m pip install --quiet -e ".[dev]"
+# compat mode puts src/ on the path, so Hydra's plugin scan sees evenflag's
+# sweepers in the hydra_plugins namespace (the default editable mode hides it).
+.venv/bin/python -m pip install --quiet -e ".[dev]" --config-settings editable_mode=compat

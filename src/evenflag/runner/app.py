@@ -185,13 +185,15 @@ def _check_launcher(cfg: DictConfig) -> None:
 
 
 def _register_plugins() -> None:
-    """evenflag's search sweeper, also where an editable install hides it from
+    """evenflag's sweepers, also where an editable install hides them from
     Hydra's scan of the hydra_plugins namespace (the import costs no Optuna)."""
     from hydra.core.plugins import Plugins
 
+    from hydra_plugins.evenflag_search.checked_sweeper import CheckedSweeper
     from hydra_plugins.evenflag_search.search_sweeper import SearchSweeper
 
     Plugins.instance().register(SearchSweeper)
+    Plugins.instance().register(CheckedSweeper)
 
 
 def _call_hydra(argv: list[str]) -> int:
@@ -363,8 +365,10 @@ def _check_plain_values(cfg: DictConfig, plain_values: list[str]) -> None:
         return
     from evenflag.runner.config import check_values
 
+    # One schema-checked copy, updated value by value: every value of a key is
+    # checked in turn (merging a fresh copy per value cost ~0.1 s each).
+    run = OmegaConf.merge(OmegaConf.structured(RunConfig), {k: cfg[k] for k in cfg if k != "hydra"})
     for item, text in zip(_parse(plain_values), plain_values):
-        run = OmegaConf.merge(OmegaConf.structured(RunConfig), {k: cfg[k] for k in cfg if k != "hydra"})
         try:
             OmegaConf.update(run, item.key_or_group.lstrip("+~"), item.value(), merge=True)
         except (OmegaConfBaseException, ValueError) as exc:
