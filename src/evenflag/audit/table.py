@@ -11,7 +11,6 @@ seen on (data rows count from 1, after the header).
 
 from __future__ import annotations
 
-import hashlib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -19,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from evenflag.audit.spec import AuditSpec
+from evenflag.data.cache import sha256_file
 from evenflag.errors import DatasetError
 
 FLAG_TRUE = {"1", "true", "yes", "y", "t"}
@@ -54,14 +54,6 @@ class AuditTable:
     def group_sizes(self) -> dict[str, int]:
         counts = np.bincount(self.group, minlength=len(self.group_names))
         return {name: int(c) for name, c in zip(self.group_names, counts)}
-
-
-def file_sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(8 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def detect_format(path: Path, fmt: str) -> str:
@@ -272,7 +264,7 @@ def read_audit_file(spec: AuditSpec) -> AuditTable:
     group, group_names = combine_groups([np.concatenate(p) for p in group_parts], [c.names for c in group_codes],
                                         spec.group)
     table = AuditTable(
-        name=spec.name or path.name, path=path.resolve(), fmt=fmt, sha256=file_sha256(path),
+        name=spec.name or path.name, path=path.resolve(), fmt=fmt, sha256=sha256_file(path),
         score=np.concatenate(parts["score"]), group=group, group_names=group_names,
         label=np.concatenate(parts["label"]) if spec.label else None,
         flag=np.concatenate(parts["flag"]) if spec.flag else None,
