@@ -294,3 +294,16 @@ def test_threshold_policies_that_cannot_apply_to_an_export_are_refused(tmp_path,
     assert _audit(tmp_path, monkeypatch, tmp_path / "claims.csv", "score=risk", "group=[region]",
                   "threshold=train_quantile") == 2
     assert "held-out training rows" in capsys.readouterr().err
+
+
+def test_out_never_replaces_a_folder_that_is_not_an_audit(tmp_path, monkeypatch, capsys):
+    _claims().to_csv(tmp_path / "claims.csv", index=False)
+    keep = tmp_path / "notes"
+    keep.mkdir()
+    (keep / "mine.txt").write_text("not an audit")
+    settings = ["score=risk", "group=[region]", "flag=flagged", "metrics.bootstrap=0"]
+    assert _audit(tmp_path, monkeypatch, tmp_path / "claims.csv", *settings, f"out={keep}") == 2
+    assert "is not an earlier audit's folder" in capsys.readouterr().err
+    assert (keep / "mine.txt").read_text() == "not an audit" and _runs(tmp_path) == []
+    assert _audit(tmp_path, monkeypatch, tmp_path / "claims.csv", *settings, f"out={tmp_path}") == 2
+    assert (tmp_path / "claims.csv").exists()

@@ -119,6 +119,7 @@ def run_audit(cfg: DictConfig) -> int:
     from evenflag.runner.tracking import TAG, tracker_for
 
     values, audit, threshold, metrics = _specs(cfg)
+    _check_out(values)
     table = read_audit_file(audit)
     check_flag_source(table, threshold)
     launch_dir = Path.cwd()
@@ -180,6 +181,21 @@ def run_audit(cfg: DictConfig) -> int:
     print(f"written: {out / 'memo.md'}, {out / 'groups.md'}" + (f", {out / 'trend.png'}" if periods else "")
           + f"; run {run_id[:8]} in study {values['study']} ({tracker.uri})")
     return 0
+
+
+def _check_out(values: dict) -> None:
+    """``out`` is replaced by the audit's outputs: refuse a folder that holds
+    anything but an earlier audit's outputs (or that holds the current folder)."""
+    if not values.get("out"):
+        return
+    out = Path(values["out"]).expanduser().resolve()
+    here = Path.cwd().resolve()
+    if out == here or out in here.parents:
+        raise ConfigError(f"out={values['out']} is the current folder or holds it; give a new folder for the audit's "
+                          "outputs")
+    if out.exists() and (not out.is_dir() or (any(out.iterdir()) and not (out / "memo.md").is_file())):
+        raise ConfigError(f"out={values['out']} exists and is not an earlier audit's folder; give a new or empty "
+                          "folder (its contents would be replaced)")
 
 
 def _out_root(values: dict, launch_dir: Path) -> Path:
