@@ -121,7 +121,8 @@ def launch(argv: list[str]) -> int:
         os.environ[LAUNCH_ID_ENV] = launch_id
         _STOPPED.clear()
         try:
-            code = _call_hydra(_force_keys_of_swept_groups(argv, overrides, extra_dirs) if multirun else argv)
+            code = _call_hydra(_with_checked_sweeper(_force_keys_of_swept_groups(argv, overrides, extra_dirs), first)
+                               if multirun else argv)
         except KeyboardInterrupt:
             interrupted = "the launch was interrupted (SIGINT)"
             raise
@@ -319,6 +320,17 @@ def _check_search(cfg: DictConfig) -> None:
                        OmegaConf.to_container(sweeper.objectives) if sweeper.objectives is not None else None)
     except SearchError as exc:
         raise ConfigError(str(exc)) from exc
+
+
+def _with_checked_sweeper(argv: list[str], cfg: DictConfig) -> list[str]:
+    """A grid sweep runs on Hydra's basic sweeper without its second composition
+    of every job (configs/hydra/sweeper/checked.yaml): every value was checked
+    above. Chosen here, not in config.yaml, so that an experiment's own sweeper
+    (the search) is never replaced."""
+    target = str(OmegaConf.select(cfg, "hydra.sweeper._target_") or "")
+    if target == "hydra._internal.core_plugins.basic_sweeper.BasicSweeper":
+        return [*argv, "hydra/sweeper=checked"]
+    return argv
 
 
 def _is_search(cfg: DictConfig) -> bool:

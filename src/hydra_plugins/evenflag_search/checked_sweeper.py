@@ -4,7 +4,7 @@ Hydra's basic sweeper composes every job's config once to check the batch and
 then again to run it, which on evenflag's config tree costs about 0.3 s per
 job. ``evenflag run`` composes and checks every swept value before the launch
 (runner/app.py), so this sweeper skips Hydra's check and each job is composed
-once. It is the default sweeper of configs/config.yaml.
+once. `evenflag run` picks it for every grid sweep (runner/app.py).
 """
 
 from hydra._internal.core_plugins.basic_sweeper import BasicSweeper

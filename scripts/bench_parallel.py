@@ -1,0 +1,65 @@
+"""The parallel launcher against the machine's fair limit.
+
+The fair limit for a launcher with 2 workers is two independent half-sweeps
+started at the same time as separate `evenflag run -m` processes, one thread
+each (on this 2-core machine two copies of a single-threaded loop each run at
+full speed). Both sides run the same runs into fresh stores; the script
+prints each side's wall time and the launcher's throughput as a fraction of
+the limit's (goal: at least 0.85).
+
+    .venv/bin/python scripts/bench_parallel.py [--runs 8] [--detectors deep_svdd,isolation_forest]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ENV = {**os.environ, "MLFLOW_DISABLE_TELEMETRY": "true", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+COMMON = ["dataset=adult", "metrics=default", "threads=1"]
+
+
+def evenflag(cwd: Path, *args: str) -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", "evenflag.cli", "run", "-m", *args], cwd=cwd, env=ENV,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
+def wait_all(processes) -> None:
+    for process in processes:
+        out, err = process.communicate()
+        if process.returncode:
+            raise SystemExit(f"a launch failed:\n{out[-1500:]}\n{err[-1500:]}")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--runs", type=int, default=8)
+    parser.add_argument("--detectors", default="deep_svdd,isolation_forest")
+    args = parser.parse_args()
+    seeds = list(range(args.runs))
+    halves = [seeds[: len(seeds) // 2], seeds[len(seeds) // 2:]]
+    for detector in args.detectors.split(","):
+        with tempfile.TemporaryDirectory() as scratch:
+            folders = [Path(scratch) / name for name in ("launcher", "half_a", "half_b")]
+            for folder in folders:
+                folder.mkdir()
+            started = time.perf_counter()
+            wait_all([evenflag(folders[0], *COMMON, f"detector={detector}", "hydra/launcher=parallel",
+                               "hydra.launcher.n_jobs=2", "seed=" + ",".join(map(str, seeds)))])
+            launcher = time.perf_counter() - started
+            started = time.perf_counter()  # each half in its own folder and store, started together
+            wait_all([evenflag(folder, *COMMON, f"detector={detector}", "seed=" + ",".join(map(str, half)))
+                      for folder, half in zip(folders[1:], halves)])
+            limit = time.perf_counter() - started
+        print(f"{args.runs} {detector} runs on adult: parallel launcher (2 jobs) {launcher:.1f} s, two independent "
+              f"half-sweeps at once {limit:.1f} s: {limit / launcher:.2f} of the limit's throughput (goal >= 0.85)",
+              flush=True)
+
+
+if __name__ == "__main__":
+    main()
