@@ -25,7 +25,7 @@ from omegaconf import DictConfig, OmegaConf
 from evenflag.errors import ConfigError, EvenflagError
 from evenflag.paths import config_dir
 from evenflag.plugins import PLUGIN_DIRS_ENV
-from evenflag.runner import interrupts, ledger
+from evenflag.runner import ledger
 from evenflag.runner.config import register
 
 register()
@@ -106,7 +106,6 @@ def launch(argv: list[str]) -> int:
     path.parent.mkdir(parents=True, exist_ok=True)
     launch_id = f"{socket.gethostname()}-{os.getpid()}-{time.time_ns()}"
     previous = signal.signal(signal.SIGTERM, _terminate)
-    previous_int = signal.signal(signal.SIGINT, interrupts.on_sigint)  # waits for a store write in progress
     interrupted = "the launch ended"
     try:
         os.environ[ledger.LEDGER_ENV] = str(path)
@@ -131,7 +130,6 @@ def launch(argv: list[str]) -> int:
         entries = ledger.read(path)
     finally:
         signal.signal(signal.SIGTERM, previous)
-        signal.signal(signal.SIGINT, previous_int)
         try:  # runs of this launch still RUNNING (in workers the launcher stopped): end them with the reason
             tracker.close_launch(launch_id, interrupted)
         except Exception:  # the store is gone or unreachable: the lease closes them later
@@ -174,7 +172,7 @@ _STOPPED: list[int] = []
 def _terminate(signum, frame):
     """SIGTERM ends the launch like Ctrl-C: the running job records its run as KILLED first."""
     _STOPPED.append(signum)
-    interrupts.deliver(signum)  # SystemExit now, or once the store write in progress is done
+    raise SystemExit("SIGTERM")
 
 
 def _check_launcher(cfg: DictConfig) -> None:

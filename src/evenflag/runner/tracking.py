@@ -13,7 +13,6 @@ import time
 from pathlib import Path
 
 from evenflag.errors import ConfigError
-from evenflag.runner.interrupts import uninterrupted
 from evenflag.runner.lease import identity_tags, is_dead
 from evenflag.runner.store import file_lock, prepare_sqlite_store, sqlite_path
 
@@ -141,7 +140,6 @@ class Tracker:
         runs = self._runs_of(fingerprint, "FINISHED")
         return runs[0].info.run_id if runs else None
 
-    @uninterrupted
     def claim(self, fingerprint: str, run_name: str, tags: dict[str, str], rerun: bool = False):
         """(run_id, None) when this job may run the cell, else (None, reason)."""
         with self._lock():
@@ -172,14 +170,12 @@ class Tracker:
                     return None, f"finished before as run {finished[:8]}"
         return run_id, None
 
-    @uninterrupted
     def supersede(self, fingerprint: str, run_id: str) -> None:
         """After ``rerun=true`` finished: older finished runs of the cell stay, marked as superseded."""
         for run in self._runs_of(fingerprint, "FINISHED"):
             if run.info.run_id != run_id:
                 self.client.set_tag(run.info.run_id, f"{TAG}superseded_by", run_id)
 
-    @uninterrupted
     def close_stale_runs(self) -> int:
         """Mark RUNNING runs that are dead (heartbeat older than the lease on any
         host, or process gone on this host) as KILLED with the reason."""
@@ -192,7 +188,6 @@ class Tracker:
                 closed += 1
         return closed
 
-    @uninterrupted
     def close_launch(self, launch_id: str, reason: str) -> int:
         """Mark this launch's runs that are still RUNNING as KILLED (the launch is ending)."""
         if not launch_id:
@@ -205,7 +200,6 @@ class Tracker:
             closed += 1
         return closed
 
-    @uninterrupted
     def start(self, run_name: str, tags: dict[str, str]) -> str:
         tags = {**tags, **identity_tags(TAG), f"{TAG}status": "running"}
         run = self.client.create_run(self.experiment_id, run_name=run_name, tags=tags)
@@ -214,7 +208,6 @@ class Tracker:
     def heartbeat(self, run_id: str) -> None:
         self.client.set_tag(run_id, f"{TAG}heartbeat", f"{time.time():.3f}")
 
-    @uninterrupted
     def log(self, run_id: str, params: dict[str, str], metrics: dict[str, float], tags: dict[str, str]) -> None:
         """As few log_batch calls as MLflow's per-batch limits allow (usually one)."""
         from mlflow.entities import Metric, Param, RunTag
@@ -230,7 +223,6 @@ class Tracker:
             m, metrics_left = metrics_left[:room], metrics_left[room:]
             self.client.log_batch(run_id, metrics=m, params=p, tags=t)
 
-    @uninterrupted
     def log_history(self, run_id: str, history: list[dict[str, float]]) -> None:
         """Per-epoch training curves as metric steps (e.g. detection loss, adversary accuracy)."""
         from mlflow.entities import Metric
@@ -241,24 +233,19 @@ class Tracker:
         for start in range(0, len(items), MAX_METRICS):
             self.client.log_batch(run_id, metrics=items[start:start + MAX_METRICS])
 
-    @uninterrupted
     def log_artifacts(self, run_id: str, folder: Path) -> None:
         self.client.log_artifacts(run_id, str(folder))
 
-    @uninterrupted
     def finish(self, run_id: str) -> None:
         self.client.set_terminated(run_id, status="FINISHED")
 
-    @uninterrupted
     def fail(self, run_id: str, message: str) -> None:
         self._end(run_id, "FAILED", "failed", message)
 
-    @uninterrupted
     def kill(self, run_id: str, reason: str) -> None:
         """End a run that did not finish (interrupted, orphaned, dead) as KILLED, with the reason."""
         self._end(run_id, "KILLED", "killed", reason)
 
-    @uninterrupted
     def withdraw(self, run_id: str, reason: str) -> None:
         """Take back a claim that lost to another: ended and deleted, so it never shows as a result."""
         self._end(run_id, "KILLED", "withdrawn", reason)
