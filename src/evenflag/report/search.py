@@ -84,10 +84,16 @@ def searched_settings(runs: RunTable, cells: pd.DataFrame) -> pd.DataFrame:
 def write_search(runs: RunTable, table: pd.DataFrame, out: Path, figures: bool = True) -> dict[str, Path]:
     """``pareto.md`` / ``pareto.csv`` (the Pareto-optimal configurations) and
     ``search_front.png`` (every trial, the front, the four-fifths line)."""
+    objectives = objectives_of(runs)
+    if not objectives:
+        return {}
+    from evenflag.report.tables import aggregate
+
+    # The objectives' own means, whichever metrics the displayed table shows.
+    table = aggregate(runs.runs, [metric for metric, _ in objectives])
     cells = pareto_cells(runs, table)
     if cells.empty:
         return {}
-    objectives = objectives_of(runs)
     columns = [f"{metric}.mean" for metric, _ in objectives]
     cells = pd.concat([cells, searched_settings(runs, cells)], axis=1)
     params = list(searched_settings(runs, cells.iloc[:0]).columns)
