@@ -8,6 +8,10 @@ prints each side's wall time and the launcher's throughput as a fraction of
 the limit's (goal: at least 0.85).
 
     .venv/bin/python scripts/bench_parallel.py [--runs 8] [--detectors deep_svdd,isolation_forest]
+
+Measured once on the 2-core development machine: 8 Deep SVDD runs 45.6 s
+against 40.2 s (0.88 of the limit), 8 isolation-forest runs 18.0 s against
+11.9 s (0.66).
 """
 
 from __future__ import annotations
