@@ -81,7 +81,7 @@ def build_report(request: ReportRequest) -> dict[str, Path]:
         written.update(write_figures(runs, table, out, run_id=run_id))
     from evenflag.report.search import write_search
 
-    written.update(write_search(runs, table, out, figures=request.figures))
+    written.update(write_search(runs, out, figures=request.figures))
     if request.memo:
         from evenflag.report.memo import write_memo
 

@@ -81,7 +81,7 @@ def searched_settings(runs: RunTable, cells: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(values, index=cells.index, columns=names)
 
 
-def write_search(runs: RunTable, table: pd.DataFrame, out: Path, figures: bool = True) -> dict[str, Path]:
+def write_search(runs: RunTable, out: Path, figures: bool = True) -> dict[str, Path]:
     """``pareto.md`` / ``pareto.csv`` (the Pareto-optimal configurations) and
     ``search_front.png`` (every trial, the front, the four-fifths line)."""
     objectives = objectives_of(runs)

@@ -26,7 +26,6 @@ are configs/hydra/sweeper/search.yaml.
 
 from __future__ import annotations
 
-import logging
 import os
 from pathlib import Path
 from typing import Any, Optional
@@ -37,8 +36,6 @@ from hydra.core.plugins import Plugins
 from hydra.plugins.sweeper import Sweeper
 from hydra.types import HydraContext, TaskFunction
 from omegaconf import DictConfig, OmegaConf
-
-log = logging.getLogger(__name__)
 
 DIRECTIONS = ("maximize", "minimize")
 SAMPLERS = ("tpe", "nsga2", "random")
