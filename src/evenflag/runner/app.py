@@ -177,22 +177,54 @@ def _terminate(signum, frame):
 
 def _check_launcher(cfg: DictConfig) -> None:
     launcher = OmegaConf.select(cfg, "hydra.launcher") or {}
+    if str(launcher.get("_target_", "")).endswith(".RayLauncher"):
+        _check_ray(launcher)
     n_jobs = launcher.get("n_jobs") if hasattr(launcher, "get") else None
     if n_jobs is not None and (not isinstance(n_jobs, int) or n_jobs == 0 or n_jobs < -1):
         raise ConfigError(f"hydra.launcher.n_jobs={n_jobs} is invalid; use a positive number of parallel jobs "
                           "(or -1 for one per core)")
 
 
+RAY_CONNECT_SECONDS = 5
+
+
+def _check_ray(launcher) -> None:
+    """Ray installed, and a head that answers at the address: Ray itself retries
+    a dead address for minutes."""
+    import importlib.util
+
+    if importlib.util.find_spec("ray") is None:
+        raise ConfigError("hydra/launcher=ray needs Ray in this environment: pip install ray")
+    cpus = launcher.get("cpus_per_job")
+    if not isinstance(cpus, int) or isinstance(cpus, bool) or cpus < 1:
+        raise ConfigError(f"hydra.launcher.cpus_per_job={cpus} is invalid; use a whole number of at least 1")
+    address = launcher.get("address")
+    if not address or address == "auto":
+        return
+    host, _, port = str(address).rpartition(":")
+    if not host or not port.isdigit():
+        raise ConfigError(f"hydra.launcher.address={address} is invalid; use HOST:PORT of the Ray head "
+                          "(ray start --head prints it), auto, or null to start Ray here")
+    try:
+        socket.create_connection((host.strip("[]"), int(port)), timeout=RAY_CONNECT_SECONDS).close()
+    except OSError as exc:
+        raise ConfigError(f"hydra.launcher.address={address}: no Ray head answers there within "
+                          f"{RAY_CONNECT_SECONDS} s ({exc.strerror or exc}); start one with `ray start --head "
+                          f"--port={port}` or fix the address") from None
+
+
 def _register_plugins() -> None:
-    """evenflag's sweepers, also where an editable install hides them from
+    """evenflag's sweepers and Ray launcher, also where an editable install hides them from
     Hydra's scan of the hydra_plugins namespace (the import costs no Optuna)."""
     from hydra.core.plugins import Plugins
 
+    from hydra_plugins.evenflag_ray.ray_launcher import RayLauncher
     from hydra_plugins.evenflag_search.checked_sweeper import CheckedSweeper
     from hydra_plugins.evenflag_search.search_sweeper import SearchSweeper
 
     Plugins.instance().register(SearchSweeper)
     Plugins.instance().register(CheckedSweeper)
+    Plugins.instance().register(RayLauncher)
 
 
 def _call_hydra(argv: list[str]) -> int:

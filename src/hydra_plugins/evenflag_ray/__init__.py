@@ -1,0 +1,1 @@
+"""evenflag's Hydra launcher that runs jobs as Ray tasks (ray_launcher.py)."""
