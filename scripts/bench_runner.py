@@ -7,7 +7,7 @@
    isolation-forest runs on adult. Goal: at least 1.7x.
 3. Peak resident memory of one run on adult per detector. Goal: under 1 GB.
 
-Usage: .venv/bin/python scripts/bench_runner.py [--jobs N] [--skip-memory]
+Usage: .venv/bin/python scripts/bench_runner.py [--jobs N] [--skip-memory] [--parts overhead,parallel,memory]
 Scratch files go to a temporary folder.
 """
 
@@ -138,13 +138,17 @@ def main():
     parser = argparse.ArgumentParser()
     parser.add_argument("--jobs", type=int, default=20)
     parser.add_argument("--skip-memory", action="store_true")
+    parser.add_argument("--parts", default="overhead,parallel,memory", help="which of the three to run")
     parser.add_argument("--detectors", default="isolation_forest,local_outlier_factor,autoencoder,deep_svdd,adversarial")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory(prefix="evenflag-bench-") as folder:
         scratch = Path(folder)
-        overhead(scratch, args.jobs)
-        parallel(scratch)
-        if not args.skip_memory:
+        parts = args.parts.split(",")
+        if "overhead" in parts:
+            overhead(scratch, args.jobs)
+        if "parallel" in parts:
+            parallel(scratch)
+        if "memory" in parts and not args.skip_memory:
             memory(scratch, args.detectors.split(","))
 
 

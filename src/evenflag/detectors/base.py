@@ -17,7 +17,9 @@ the entry-point group ``evenflag.detectors``.
 
 from __future__ import annotations
 
+import functools
 import inspect
+import sys
 from importlib.metadata import entry_points
 from typing import Any, Protocol, runtime_checkable
 
@@ -48,9 +50,16 @@ class Detector(Protocol):
 
 def registered_names() -> dict[str, str]:
     names = dict(BUILT_IN)
-    for entry in entry_points(group=ENTRY_POINT_GROUP):
-        names.setdefault(entry.name, entry.value)
+    for name, value in _entry_point_names(tuple(sys.path)):
+        names.setdefault(name, value)
     return names
+
+
+@functools.lru_cache(maxsize=8)
+def _entry_point_names(path: tuple[str, ...]) -> tuple[tuple[str, str], ...]:
+    """Installed plugins' names, read once per import path (a scan of every
+    installed package's metadata costs about 10 ms, and every run asks)."""
+    return tuple((entry.name, entry.value) for entry in entry_points(group=ENTRY_POINT_GROUP))
 
 
 def resolve_detector_class(name_or_path: str):

@@ -99,7 +99,7 @@ def run_job(cfg: DictConfig) -> dict:
         # staging folder under the job's output folder is removed once they are logged.
         artifacts = _output_dir() / "artifacts"
         artifacts.mkdir(parents=True, exist_ok=True)
-        (artifacts / "config.yaml").write_text(OmegaConf.to_yaml(resolved))
+        (artifacts / "config.yaml").write_text(_yaml(resolved))
         out.scores.to_parquet(artifacts / "scores.parquet", index=False)
         metrics = {**out.metrics, **{f"time.{k}": v for k, v in out.timings.items()}}
         notes = {f"{TAG}{k}": v for k, v in out.notes.items()}
@@ -144,6 +144,15 @@ def run_job(cfg: DictConfig) -> dict:
     finally:
         if beat is not None:
             beat.stop()
+
+
+def _yaml(resolved: dict) -> str:
+    """The resolved config as YAML, with libyaml's emitter where there is one
+    (OmegaConf.to_yaml took about 20 ms per run)."""
+    import yaml
+
+    dumper = getattr(yaml, "CSafeDumper", yaml.SafeDumper)
+    return yaml.dump(resolved, Dumper=dumper, sort_keys=False, default_flow_style=False, allow_unicode=True)
 
 
 def _signal_name(exc: BaseException) -> str:
