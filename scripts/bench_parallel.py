@@ -9,9 +9,14 @@ the limit's (goal: at least 0.85).
 
     .venv/bin/python scripts/bench_parallel.py [--runs 8] [--detectors deep_svdd,isolation_forest]
 
-Measured once on the 2-core development machine: 8 Deep SVDD runs 45.6 s
-against 40.2 s (0.88 of the limit), 8 isolation-forest runs 18.0 s against
-11.9 s (0.66).
+Measured on the 2-core development machine: 8 Deep SVDD runs 45.6 s against
+40.2 s (0.88 of the limit), 8 isolation-forest runs 18.0 s against 11.9 s
+(0.66). With the workers started and importing while the launch prepares
+(runner/warm.py): Deep SVDD 42.3 s against 39.8 s (0.94), isolation forest
+14.7-15.0 s against 10.6 s (0.70-0.72; 0.61 without, same session). What is
+left for the isolation forest: the launch's own start (imports, checks, the
+store) before the workers get jobs, and Hydra composing each job in a worker
+(about 0.3 s of each 1.2 s job).
 """
 
 from __future__ import annotations

@@ -91,23 +91,16 @@ def launch(argv: list[str]) -> int:
     from evenflag.runner.lease import LAUNCH_ID_ENV, LAUNCHER_HOST_ENV, LAUNCHER_PID_ENV
     from evenflag.runner.tracking import tracker_for, ui_command
 
-    tracker = tracker_for(first.tracking.uri, first.study, first.tracking.artifact_root, None,
-                          first.tracking.timeout_seconds, first.tracking.claim_settle_seconds)
-    tracker.experiment_id  # creates the store and the study once, before any job
-    closed = tracker.close_stale_runs()
-    if closed:
-        print(f"marked {closed} run(s) left RUNNING by an interrupted launch as KILLED")
-
     # The ledger lives under the launch directory (on clusters usually a shared
     # file system, unlike /tmp), one file per launch, removed at the end.
     folder = Path.cwd() / "outputs" / ".ledgers"
-    ledger.remove_stale(folder)
     path = folder / f"{time.strftime('%Y%m%d-%H%M%S')}-{os.getpid()}.jsonl"
-    path.parent.mkdir(parents=True, exist_ok=True)
     launch_id = f"{socket.gethostname()}-{os.getpid()}-{time.time_ns()}"
     previous = signal.signal(signal.SIGTERM, _terminate)
     interrupted = "the launch ended"
+    tracker = None
     try:
+        # Set before any worker process starts: workers keep the environment they started with.
         os.environ[ledger.LEDGER_ENV] = str(path)
         os.environ[ledger.TOTAL_ENV] = str(total)
         os.environ[ledger.START_ENV] = str(time.time())
@@ -118,7 +111,20 @@ def launch(argv: list[str]) -> int:
         os.environ[LAUNCHER_PID_ENV] = str(os.getpid())
         os.environ[LAUNCHER_HOST_ENV] = socket.gethostname()
         os.environ[LAUNCH_ID_ENV] = launch_id
+        # Everything is checked, so no launch fails on its settings from here on.
+        warming = _start_workers(first) if multirun else None
+
+        tracker = tracker_for(first.tracking.uri, first.study, first.tracking.artifact_root, None,
+                              first.tracking.timeout_seconds, first.tracking.claim_settle_seconds)
+        tracker.experiment_id  # creates the store and the study once, before any job
+        closed = tracker.close_stale_runs()
+        if closed:
+            print(f"marked {closed} run(s) left RUNNING by an interrupted launch as KILLED")
+        ledger.remove_stale(folder)
+        path.parent.mkdir(parents=True, exist_ok=True)
         _STOPPED.clear()
+        if warming is not None:
+            warming.join()
         try:
             code = _call_hydra(_with_checked_sweeper(_force_keys_of_swept_groups(argv, overrides, extra_dirs), first)
                                if multirun else argv)
@@ -131,7 +137,8 @@ def launch(argv: list[str]) -> int:
     finally:
         signal.signal(signal.SIGTERM, previous)
         try:  # runs of this launch still RUNNING (in workers the launcher stopped): end them with the reason
-            tracker.close_launch(launch_id, interrupted)
+            if tracker is not None:
+                tracker.close_launch(launch_id, interrupted)
         except Exception:  # the store is gone or unreachable: the lease closes them later
             pass
         path.unlink(missing_ok=True)
@@ -173,6 +180,22 @@ def _terminate(signum, frame):
     """SIGTERM ends the launch like Ctrl-C: the running job records its run as KILLED first."""
     _STOPPED.append(signum)
     raise SystemExit("SIGTERM")
+
+
+def _start_workers(cfg: DictConfig):
+    """The parallel launcher's workers, started now and importing what a job
+    needs while this launch prepares (runner/warm.py); None for other launchers."""
+    from evenflag.runner.warm import JOB_MODULES, start_joblib_workers
+
+    launcher = OmegaConf.to_container(OmegaConf.select(cfg, "hydra.launcher") or OmegaConf.create({}), resolve=True)
+    try:
+        from evenflag.detectors.base import detector_module
+
+        detector = OmegaConf.to_container(cfg.detector, resolve=True)
+        modules = [m for m in (detector_module(detector), detector_module(detector.get("base") or {})) if m]
+    except Exception:  # the jobs import their detector themselves
+        modules = []
+    return start_joblib_workers(launcher, [*JOB_MODULES, *modules])
 
 
 def _check_launcher(cfg: DictConfig) -> None:
