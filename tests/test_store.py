@@ -127,6 +127,26 @@ def test_interrupt_leaves_no_running_run(tmp_path, signum):
 
 
 @pytest.mark.slow
+def test_ctrl_c_dropped_by_a_finaliser_still_ends_the_launch(tmp_path):
+    """Python drops a KeyboardInterrupt raised inside __del__ (Python data model,
+    object.__del__). The detector here spends its fit inside finalisers, so
+    Ctrl-C almost surely lands there; the launch must still end (exit 130), its
+    run KILLED, and the second cell never start."""
+    process = _start(tmp_path, "run", "-m", "--config-dir", str(REPO / "tests" / "configs"), *SMALL,
+                     "study=dropped", "detector=fits_in_finalisers", "seed=0,1")
+    assert _wait_for(lambda: (tmp_path / "outputs" / "tracking" / "mlflow.db").exists(), 60)
+    assert _wait_for(lambda: any(s == "RUNNING" for v in _status_by_cell(tmp_path, "dropped").values() for s in v),
+                     120, step=0.5)
+    time.sleep(1)  # inside the fit
+    process.send_signal(signal.SIGINT)
+    out, err = process.communicate(timeout=60)
+    assert process.returncode == 130, err[-2000:]
+    runs = runs_of(client_for(tmp_path), "dropped")
+    assert len(runs) == 1 and runs[0].info.status == "KILLED", [(r.info.status, r.data.tags) for r in runs]
+    assert "SIGINT" in runs[0].data.tags["evenflag.error"]
+
+
+@pytest.mark.slow
 def test_workers_die_with_their_launcher(tmp_path):
     # kill -9 of the parallel launcher's parent only: its workers notice within
     # seconds, end their runs as KILLED and exit; a relaunch runs each cell once.

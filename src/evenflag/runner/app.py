@@ -96,7 +96,9 @@ def launch(argv: list[str]) -> int:
     folder = Path.cwd() / "outputs" / ".ledgers"
     path = folder / f"{time.strftime('%Y%m%d-%H%M%S')}-{os.getpid()}.jsonl"
     launch_id = f"{socket.gethostname()}-{os.getpid()}-{time.time_ns()}"
+    _INTERRUPTED.clear()
     previous = signal.signal(signal.SIGTERM, _terminate)
+    previous_sigint = signal.signal(signal.SIGINT, _interrupt) if _on_main_thread() else None
     interrupted = "the launch ended"
     tracker = None
     try:
@@ -128,6 +130,7 @@ def launch(argv: list[str]) -> int:
         try:
             code = _call_hydra(_with_checked_sweeper(_force_keys_of_swept_groups(argv, overrides, extra_dirs), first)
                                if multirun else argv)
+            raise_if_interrupted()
         except KeyboardInterrupt:
             interrupted = "the launch was interrupted (SIGINT)"
             raise
@@ -136,6 +139,8 @@ def launch(argv: list[str]) -> int:
         entries = ledger.read(path)
     finally:
         signal.signal(signal.SIGTERM, previous)
+        if previous_sigint is not None:
+            signal.signal(signal.SIGINT, previous_sigint)
         try:  # runs of this launch still RUNNING (in workers the launcher stopped): end them with the reason
             if tracker is not None:
                 tracker.close_launch(launch_id, interrupted)
@@ -174,6 +179,31 @@ def launch(argv: list[str]) -> int:
 
 
 _STOPPED: list[int] = []
+_INTERRUPTED: list[int] = []
+
+
+def _interrupt(signum, frame):
+    """Ctrl-C: raise KeyboardInterrupt as Python does, and remember it. A raise
+    that lands inside a finaliser (``__del__``, a weakref callback) is printed
+    and dropped by Python; the job and the launch check the flag and raise it
+    again, so a launch never runs on after Ctrl-C."""
+    _INTERRUPTED.append(signum)
+    raise KeyboardInterrupt
+
+
+def raise_if_interrupted(stopped_too: bool = False) -> None:
+    """Raise KeyboardInterrupt if Ctrl-C reached this launch, even if the first
+    raise was dropped (and, with ``stopped_too``, SIGTERM's SystemExit)."""
+    if stopped_too and _STOPPED:
+        raise SystemExit("SIGTERM")
+    if _INTERRUPTED:
+        raise KeyboardInterrupt
+
+
+def _on_main_thread() -> bool:
+    import threading
+
+    return threading.current_thread() is threading.main_thread()
 
 
 def _terminate(signum, frame):

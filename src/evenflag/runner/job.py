@@ -60,9 +60,10 @@ def run_job(cfg: DictConfig) -> dict:
     """Run or skip one job; returns {"status": done | skipped | busy | failed,
     "run_id", "metrics"} (a search sweeper reads its objectives from the metrics;
     a skipped cell gives back the metrics of its finished run)."""
-    from evenflag.runner.app import format_exception
+    from evenflag.runner.app import format_exception, raise_if_interrupted
     from evenflag.runner.run import execute, limit_threads
 
+    raise_if_interrupted(stopped_too=True)  # no new job after Ctrl-C or SIGTERM
     started = time.time()
     name = _name(cfg)
     limit_threads(cfg.get("threads"))
@@ -95,6 +96,7 @@ def run_job(cfg: DictConfig) -> dict:
         # Params first, so a run that fails below still says what it was.
         tracker.log(run_id, flatten({k: v for k, v in resolved.items() if k not in ("tracking", "tags")}), {}, {})
         out = execute(cfg)
+        raise_if_interrupted(stopped_too=True)  # a signal dropped by a finaliser still ends the run as KILLED
         # Artifacts are written once, into the tracking store's artifact root; the
         # staging folder under the job's output folder is removed once they are logged.
         artifacts = _output_dir() / "artifacts"
