@@ -117,8 +117,8 @@ def test_interrupt_leaves_no_running_run(tmp_path, signum):
     assert _wait_for(lambda: any(s == "RUNNING" for v in _status_by_cell(tmp_path, "stop").values() for s in v),
                      120, step=0.5)
     process.send_signal(signum)  # to the launcher only, as a terminal or a scheduler would
-    code = process.wait(timeout=60)
-    assert code != 0
+    out, err = process.communicate(timeout=60)
+    assert process.returncode != 0, err[-3000:]
     runs = runs_of(client_for(tmp_path), "stop")
     assert runs and all(r.info.status != "RUNNING" for r in runs)
     killed = [r for r in runs if r.info.status == "KILLED"]
