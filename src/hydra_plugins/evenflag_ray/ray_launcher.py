@@ -36,16 +36,16 @@ log = logging.getLogger(__name__)
 FORWARDED_PREFIXES = ("EVENFLAG_", "MLFLOW_")
 
 
-def evenflag_job(overrides_config: DictConfig, hydra_context: HydraContext, task_function: TaskFunction,
-             singleton_state: dict[Any, Any], environment: dict[str, str]) -> JobReturn:
-    """One job inside a Ray worker process (workers are reused across tasks)."""
+def evenflag_job(job_config: DictConfig, hydra_context: HydraContext, task_function: TaskFunction,
+                 singleton_state: dict[Any, Any], environment: dict[str, str]) -> JobReturn:
+    """One job, composed by the launcher, inside a Ray worker process (workers are reused across tasks)."""
     from hydra.core.hydra_config import HydraConfig
 
     os.environ.update(environment)
     setup_globals()
     Singleton.set_state(singleton_state)
-    HydraConfig.instance().set_config(overrides_config)
-    return run_job(hydra_context=hydra_context, config=overrides_config, task_function=task_function,
+    HydraConfig.instance().set_config(job_config)
+    return run_job(hydra_context=hydra_context, config=job_config, task_function=task_function,
                    job_dir_key="hydra.sweep.dir", job_subdir_key="hydra.sweep.subdir")
 
 
