@@ -12,25 +12,16 @@ import subprocess
 import sys
 import tempfile
 import time
-import urllib.request
 from pathlib import Path
 
 import pytest
 
-from tests.runner_helpers import REPO, SMALL, runs_of
+from tests.runner_helpers import REPO, SMALL, free_port, runs_of, start_mlflow_server
 
 pytestmark = pytest.mark.slow
 
 RAY = shutil.which("ray", path=str(Path(sys.executable).parent))
 RAY_MISSING = "Ray is not installed in this environment (scripts/setup.sh installs it: pip install ray)"
-
-
-def _free_port():
-    import socket
-
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def _wait_for(check, what, seconds, process=None):
@@ -60,7 +51,7 @@ def _stop_group(process):
 def ray_head():
     if RAY is None:
         pytest.skip(RAY_MISSING)
-    port = _free_port()
+    port = free_port()
     # Ray's socket paths must stay short: a folder directly under /tmp.
     temp = tempfile.mkdtemp(prefix="evf-ray-", dir="/tmp")
     # A token of the test's own (as a secured cluster has), so ~/.ray/auth_token plays no part.
@@ -93,7 +84,7 @@ def postgres_uri(tmp_path):
         pytest.skip("PostgreSQL is not installed (Debian: apt-get install postgresql; .ci/run installs it)")
     pytest.importorskip("psycopg", reason="psycopg (SQLAlchemy's PostgreSQL driver) is not installed; scripts/setup.sh installs it")
     folder = Path(tempfile.mkdtemp(prefix="evf-pg-", dir="/tmp"))
-    data, port = folder / "data", _free_port()
+    data, port = folder / "data", free_port()
     # initdb refuses to run as root: run the server as the postgres user then.
     as_user = ["runuser", "-u", "postgres", "--"] if os.geteuid() == 0 else []
     if as_user:
@@ -113,19 +104,6 @@ def postgres_uri(tmp_path):
         shutil.rmtree(folder, ignore_errors=True)
 
 
-def _mlflow_server(backend: str, artifacts: Path):
-    port = _free_port()
-    server = subprocess.Popen(
-        [str(Path(sys.executable).with_name("mlflow")), "server", "--host", "127.0.0.1", "--port", str(port),
-         "--workers", "1", "--backend-store-uri", backend, "--artifacts-destination", str(artifacts)],
-        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True,
-        env={**os.environ, "MLFLOW_DISABLE_TELEMETRY": "true"})
-    uri = f"http://127.0.0.1:{port}"
-    _wait_for(lambda: urllib.request.urlopen(f"{uri}/health", timeout=2).status == 200, "the MLflow server", 120,
-              server)
-    return server, uri
-
-
 @pytest.mark.parametrize("database", ["sqlite", "postgresql"])
 def test_sweep_on_a_ray_cluster_lands_once_in_the_servers_store(tmp_path, ray_head, database, request):
     from mlflow.tracking import MlflowClient
@@ -133,7 +111,7 @@ def test_sweep_on_a_ray_cluster_lands_once_in_the_servers_store(tmp_path, ray_he
     backend = (f"sqlite:///{tmp_path / 'server.db'}" if database == "sqlite"
                else request.getfixturevalue("postgres_uri"))
     address, ray_env = ray_head
-    server, uri = _mlflow_server(backend, tmp_path / "server-artifacts")
+    server, uri = start_mlflow_server(backend, "--artifacts-destination", str(tmp_path / "server-artifacts"))
     try:
         launch = subprocess.Popen(
             [sys.executable, "-m", "evenflag.cli", "run", "-m", "hydra/launcher=ray",
@@ -192,7 +170,7 @@ def test_a_dead_ray_address_fails_fast_in_one_line(tmp_path):
     from tests.runner_helpers import evenflag
 
     started = time.time()
-    result = evenflag(tmp_path, "run", "-m", "hydra/launcher=ray", f"hydra.launcher.address=127.0.0.1:{_free_port()}",
+    result = evenflag(tmp_path, "run", "-m", "hydra/launcher=ray", f"hydra.launcher.address=127.0.0.1:{free_port()}",
                       *SMALL, "seed=0,1")
     assert result.returncode == 2 and time.time() - started < 60
     lines = result.stderr.strip().splitlines()

@@ -10,7 +10,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from tests.runner_helpers import REPO, SMALL, client_for, evenflag, runs_of
+from tests.runner_helpers import REPO, SMALL, client_for, evenflag, runs_of, start_mlflow_server
 
 
 @pytest.fixture(scope="module")
@@ -152,33 +152,10 @@ def test_submitit_local_launcher_runs_two_jobs(tmp_path):
     assert len(runs) == 2 and {r.info.status for r in runs} == {"FINISHED"}
 
 
-def _free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def test_sweep_to_an_mlflow_server_on_loopback(tmp_path):
-    import urllib.request
-
-    port = _free_port()
-    mlflow_bin = Path(sys.executable).with_name("mlflow")
-    server = subprocess.Popen(
-        [str(mlflow_bin), "server", "--host", "127.0.0.1", "--port", str(port), "--workers", "1",
-         "--backend-store-uri", f"sqlite:///{tmp_path / 'server.db'}",
-         "--default-artifact-root", (tmp_path / "server-artifacts").as_uri()],
-        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env={**os.environ, "MLFLOW_DISABLE_TELEMETRY": "true"})
-    uri = f"http://127.0.0.1:{port}"
+    server, uri = start_mlflow_server(f"sqlite:///{tmp_path / 'server.db'}",
+                                      "--default-artifact-root", (tmp_path / "server-artifacts").as_uri())
     try:
-        deadline = time.time() + 90
-        while True:
-            try:
-                urllib.request.urlopen(f"{uri}/health", timeout=2)
-                break
-            except OSError:
-                if time.time() > deadline or server.poll() is not None:
-                    pytest.fail("the MLflow server on loopback did not come up within 90 s")
-                time.sleep(0.5)
         result = evenflag(tmp_path / "..", "run", "-m", *SMALL, "study=remote", "tracking=server",
                           f"tracking.uri={uri}", "seed=0,1")
         assert result.returncode == 0, result.stderr + result.stdout

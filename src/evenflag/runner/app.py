@@ -98,7 +98,7 @@ def launch(argv: list[str]) -> int:
     launch_id = f"{socket.gethostname()}-{os.getpid()}-{time.time_ns()}"
     _INTERRUPTED.clear()
     previous = signal.signal(signal.SIGTERM, _terminate)
-    previous_sigint = signal.signal(signal.SIGINT, _interrupt) if _on_main_thread() else None
+    previous_sigint = signal.signal(signal.SIGINT, _interrupt)
     interrupted = "the launch ended"
     tracker = None
     try:
@@ -139,8 +139,7 @@ def launch(argv: list[str]) -> int:
         entries = ledger.read(path)
     finally:
         signal.signal(signal.SIGTERM, previous)
-        if previous_sigint is not None:
-            signal.signal(signal.SIGINT, previous_sigint)
+        signal.signal(signal.SIGINT, previous_sigint)
         try:  # runs of this launch still RUNNING (in workers the launcher stopped): end them with the reason
             if tracker is not None:
                 tracker.close_launch(launch_id, interrupted)
@@ -198,12 +197,6 @@ def raise_if_interrupted(stopped_too: bool = False) -> None:
         raise SystemExit("SIGTERM")
     if _INTERRUPTED:
         raise KeyboardInterrupt
-
-
-def _on_main_thread() -> bool:
-    import threading
-
-    return threading.current_thread() is threading.main_thread()
 
 
 def _terminate(signum, frame):

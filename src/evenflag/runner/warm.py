@@ -19,15 +19,12 @@ JOB_MODULES = ("evenflag.runner.app", "evenflag.runner.job", "evenflag.runner.ru
                "mlflow.store.tracking.sqlalchemy_store")
 
 
-def import_modules(modules: list[str]) -> int:
-    import os
-
+def import_modules(modules: list[str]) -> None:
     for module in modules:
         try:
             importlib.import_module(module)
         except Exception:  # a job that needs it reports the problem itself
             pass
-    return os.getpid()
 
 
 def start_joblib_workers(launcher: dict, modules: list[str]) -> threading.Thread | None:

@@ -104,8 +104,6 @@ class RayLauncher(Launcher):
         assert self.config is not None and self.task_function is not None and self.hydra_context is not None
         setup_globals()
         configure_log(self.config.hydra.hydra_logging, self.config.hydra.verbose)
-        if not isinstance(self.cpus_per_job, int) or self.cpus_per_job < 1:
-            raise ValueError(f"hydra.launcher.cpus_per_job must be a whole number of at least 1, got {self.cpus_per_job!r}")
         ray = self._connect()
         # Resolved here once: a worker resolving ${now:...} itself would pick another folder.
         sweep_dir = Path(str(self.config.hydra.sweep.dir)).resolve()
