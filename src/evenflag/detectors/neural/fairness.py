@@ -19,6 +19,8 @@ on. ``weight=0`` trains the base exactly as it trains alone.
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 from evenflag.detectors.neural.training import NeuralDetector, group_codes, mlp, torch_module
@@ -38,6 +40,28 @@ def _ramped(weight: float, epoch: int, warmup_epochs: int, ramp_epochs: int) -> 
 
 
 # ---------------------------------------------------------------- adversary
+def standardise(z, eps: float = 1e-5):
+    """Each column of the batch to mean 0 and variance 1 (batch statistics, as
+    batch normalisation without affine parameters computes them). Embeddings of
+    a hypersphere model are tiny in scale; standardised, an adversary can learn
+    from them at all. Differentiable, so the encoder sees the adversary through it."""
+    mean = z.mean(dim=0)
+    var = z.var(dim=0, unbiased=False)
+    return (z - mean) * torch_module().rsqrt(var + eps)
+
+
+def _adam(parameters, lr: float):
+    """Adam for the small side networks (adversaries, probes): the fused kernel
+    where this torch and device have it (the optimizer step is most of a small
+    network's update on the CPU), else the multi-tensor one."""
+    torch = torch_module()
+    parameters = list(parameters)
+    try:
+        return torch.optim.Adam(parameters, lr=lr, fused=True)
+    except (RuntimeError, TypeError, ValueError):
+        return torch.optim.Adam(parameters, lr=lr, foreach=True)
+
+
 _REVERSAL = None
 
 
@@ -60,13 +84,18 @@ def _gradient_reversal(z, scale: float):
     return _REVERSAL.apply(z, scale)
 
 
+REFIT_ROWS = 4096  # rows an adversary is refitted on each epoch: enough for a linear or small network
+
+
 class AdversaryPenalty:
     """Adversaries that predict the group from the embedding (softmax over every
     group value), and the term the encoder adds to its loss."""
 
     def __init__(self, weight: float, hidden: list[int], steps: int, lr: float, warmup_epochs: int,
-                 ramp_epochs: int, mode: str, encoder_target: str, n_adversaries: int, reinit_every: int, seed: int):
+                 ramp_epochs: int, mode: str, encoder_target: str, n_adversaries: int, reinit_every: int, seed: int,
+                 refit_steps: int = 0):
         self.weight, self.hidden, self.steps, self.lr = weight, list(hidden), steps, lr
+        self.refit_steps = refit_steps
         self.warmup_epochs, self.ramp_epochs, self.mode = warmup_epochs, ramp_epochs, mode
         self.encoder_target, self.n_adversaries, self.reinit_every, self.seed = (encoder_target, n_adversaries,
                                                                                  reinit_every, seed)
@@ -97,22 +126,41 @@ class _AdversaryState:
         # A private random stream, so that the base's own training is untouched.
         with torch.random.fork_rng(devices=[]):
             torch.manual_seed(self.spec.seed + 7 + 1000 * self.epoch)
-            # Embeddings of a hypersphere model are tiny in scale; standardising them
-            # at the adversary's input (batch statistics) lets it learn at all.
-            self.nets = [torch.nn.Sequential(
-                torch.nn.BatchNorm1d(self.embedding_dim, affine=False),
-                mlp([self.embedding_dim, *self.spec.hidden, len(self.group_values_)], "relu", bias=True),
-            ).to(self.device) for _ in range(self.spec.n_adversaries)]
-        self.optimizers = [torch.optim.Adam(net.parameters(), lr=self.spec.lr, foreach=True) for net in self.nets]
+            self.nets = [mlp([self.embedding_dim, *self.spec.hidden, len(self.group_values_)], "relu", bias=True)
+                         .to(self.device) for _ in range(self.spec.n_adversaries)]
+        self.optimizers = [_adam(net.parameters(), self.spec.lr) for net in self.nets]
 
     def current_weight(self, epoch: int) -> float:
         return _ramped(self.spec.weight, epoch, self.spec.warmup_epochs, self.spec.ramp_epochs)
+
+    def before_epoch(self, X, encode):
+        """With ``refit_steps``: train every adversary for that many full-batch
+        steps on the current embedding of (up to ``REFIT_ROWS`` of) the training
+        rows, so that the encoder faces adversaries that have caught up with it,
+        not ones that only saw the last batch. ``encode`` maps a tensor of rows
+        to their embedding."""
+        if not self.spec.refit_steps:
+            return
+        torch = torch_module()
+        with torch.random.fork_rng(devices=[]):
+            torch.manual_seed(self.spec.seed + 13 + 1000 * self.epoch)
+            rows = torch.randperm(len(X))[:REFIT_ROWS] if len(X) > REFIT_ROWS else torch.arange(len(X))
+        with torch.no_grad():
+            z = standardise(encode(X[rows]))
+        target = self.codes[rows]
+        for net, optimizer in zip(self.nets, self.optimizers):
+            for _ in range(self.spec.refit_steps):
+                loss = self.loss_fn(net(z), target)
+                optimizer.zero_grad(set_to_none=True)
+                loss.backward()
+                optimizer.step()
 
     def before_encoder_step(self, z, idx):
         """Train every adversary on the batch's detached embedding (alternating mode)."""
         if self.spec.mode != "alternating":
             return
         target = self.codes[idx]
+        z = standardise(z)  # detached: the same input for every step
         for net, optimizer in zip(self.nets, self.optimizers):
             for _ in range(self.spec.steps):
                 loss = self.loss_fn(net(z), target)
@@ -127,7 +175,7 @@ class _AdversaryState:
         if self.spec.mode == "gradient_reversal":
             # One backward pass trains the adversaries to predict the group and,
             # through the reversed gradient, the encoder to hide it.
-            reversed_z = _gradient_reversal(zb, weight)
+            reversed_z = standardise(_gradient_reversal(zb, weight))
             logits_all = [net(reversed_z) for net in self.nets]
             for optimizer in self.optimizers:
                 optimizer.zero_grad(set_to_none=True)  # filled by the encoder's backward pass
@@ -137,7 +185,8 @@ class _AdversaryState:
             for net in self.nets:
                 for p in net.parameters():
                     p.requires_grad_(False)
-            logits_all = [net(zb) for net in self.nets]
+            standard = standardise(zb)
+            logits_all = [net(standard) for net in self.nets]
             for net in self.nets:
                 for p in net.parameters():
                     p.requires_grad_(True)
@@ -189,28 +238,36 @@ class MonitorProbe:
         self.baseline = float(counts.max()) / float(counts.sum())
         with torch.random.fork_rng(devices=[]):
             torch.manual_seed(seed + 11)
-            self.net = torch.nn.Sequential(torch.nn.BatchNorm1d(embedding_dim, affine=False),
-                                           torch.nn.Linear(embedding_dim, n_groups)).to(device)
-        self.optimizer = torch.optim.Adam(self.net.parameters(), lr=1e-2)
+            self.net = torch.nn.Linear(embedding_dim, n_groups).to(device)
+        self.optimizer = _adam(self.net.parameters(), 1e-2)
         self.loss_fn = torch.nn.CrossEntropyLoss()
         self.correct, self.seen = 0, 0
 
     EVERY = 4  # one update every this many batches: enough for a curve, a quarter of the cost
 
-    def step(self, z, idx) -> None:
+    def loss(self, z, idx):
+        """The probe's loss on this batch (every ``EVERY``-th batch, else 0), to be
+        added to the detector's objective: the embedding enters detached, so the
+        one backward pass of the batch fills only the probe's gradients, and
+        :meth:`update` then steps it (one backward pass instead of two)."""
         torch = torch_module()
         self.calls = getattr(self, "calls", 0) + 1
+        self._pending = False
         if len(idx) < 2 or self.calls % self.EVERY:
-            return
+            return 0.0
         target = self.codes[idx]
-        logits = self.net(z.detach())
-        loss = self.loss_fn(logits, target)
+        logits = self.net(standardise(z.detach()))
         self.optimizer.zero_grad(set_to_none=True)
-        loss.backward()
-        self.optimizer.step()
+        self._pending = True
         with torch.no_grad():
             self.correct += int((logits.argmax(dim=1) == target).sum())
             self.seen += len(idx)
+        return self.loss_fn(logits, target)
+
+    def update(self) -> None:
+        if self._pending:
+            self.optimizer.step()
+            self._pending = False
 
     def summary(self) -> dict[str, float]:
         row = {"probe_accuracy": self.correct / max(self.seen, 1), "probe_baseline": self.baseline}
@@ -237,21 +294,60 @@ def mmd2_from_kernel(k, inside):
 MEDIAN_ROWS = 128  # rows of a batch used for the median heuristic (enough for a stable median, and cheap)
 
 
-def gaussian_kernel(z, scales):
-    """Sum of Gaussian kernels ``exp(-|a-b|^2 / (2 s^2))`` over the batch, with
-    widths ``s`` = each scale times the median distance between distinct rows
-    among the batch's first rows (the median heuristic, without gradient)."""
-    torch = torch_module()
+def _squared_distances(z):
+    # |a-b|^2 = |a|^2 + |b|^2 - 2 a.b: one matrix product, several times cheaper
+    # on the CPU than cdist
     squares = (z * z).sum(dim=1)
-    # |a-b|^2 = |a|^2 + |b|^2 - 2 a.b: one matrix product, whose backward pass is
-    # several times cheaper on the CPU than cdist's
-    d2 = (squares[:, None] + squares[None, :] - 2.0 * (z @ z.T)).clamp_min(0.0)
+    d2 = torch_module().addmm(squares[None, :], z, z.T, alpha=-2.0)
+    return d2.add_(squares[:, None]).clamp_min_(0.0)
+
+
+def _squarings(wide: float, narrow: float) -> int | None:
+    """How many squarings turn the kernel of width ``wide`` into that of
+    ``narrow`` (its exponent (wide/narrow)^2 = 2^k times larger), or None."""
+    ratio = (wide / narrow) ** 2
+    power = round(ratio)
+    if power >= 2 and abs(ratio - power) < 1e-9 and power & (power - 1) == 0:
+        return power.bit_length() - 1
+    return None
+
+
+def _gaussians(d2, widths):
+    """``exp(-d2 / (2 w^2))`` for each width; ``d2`` is overwritten. Where a
+    narrower width's exponent is 4, 16, ... times a wider one's, the kernel is
+    the wider kernel squared repeatedly: a multiplication is about a tenth of an
+    ``exp`` on the CPU, and the default widths (0.5, 1, 2 x the median) are
+    such a ladder."""
+    ordered = sorted(set(widths), reverse=True)
+    steps = [None] + [_squarings(a, b) for a, b in zip(ordered, ordered[1:])]
+    last_exp = max(i for i, k in enumerate(steps) if k is None)
+    out, previous = {}, None
+    for i, (w, k) in enumerate(zip(ordered, steps)):
+        if k is None:
+            source = d2 if i == last_exp else d2.clone()  # the last exp may overwrite the distances
+            kernel = source.mul_(-0.5 / (w * w)).exp_()
+        else:
+            kernel = previous
+            for _ in range(k):
+                kernel = kernel * kernel
+        out[w] = previous = kernel
+    return [out[w] for w in widths]
+
+
+@functools.lru_cache(maxsize=8)
+def _upper_triangle(r: int, device: str):
+    return torch_module().triu_indices(r, r, 1, device=device).unbind()
+
+
+def median_widths(d2, scales) -> list[float]:
+    """Kernel widths: each scale times the median distance between distinct rows
+    among the batch's first rows (the median heuristic; no gradient)."""
+    torch = torch_module()
     with torch.no_grad():
-        r = min(len(z), MEDIAN_ROWS)
-        upper = d2[:r, :r][torch.triu_indices(r, r, 1, device=z.device).unbind()]
+        r = min(len(d2), MEDIAN_ROWS)
+        upper = d2[:r, :r][_upper_triangle(r, str(d2.device))]
         median = float(upper.median().sqrt()) if len(upper) else 1.0
-    widths = [max(median, 1e-12) * s for s in scales]
-    return sum(torch.exp(-d2 / (2 * w * w)) for w in widths)
+    return [max(median, 1e-12) * s for s in scales]
 
 
 def gaussian_kernel_mmd2(x, y, bandwidths):
@@ -264,6 +360,73 @@ def gaussian_kernel_mmd2(x, y, bandwidths):
     inside = torch.zeros(len(xy), dtype=torch.bool)
     inside[:len(x)] = True
     return mmd2_from_kernel(k, inside)
+
+
+def contrast_weights(codes, groups, dtype=None):
+    """The matrix ``C`` with ``sum_ij C_ij k_ij`` = the mean over ``groups`` of
+    MMD^2_u(group g, rest of the batch) for any kernel matrix ``k``: 1/(m(m-1))
+    inside the group, 1/(n(n-1)) inside the rest, -1/(mn) across, 0 on the
+    diagonal (eq. 3 of Gretton et al. written as one weighted sum).
+
+    Built as ``V M V^T``: ``V`` holds each row's indicators (in group g, not in
+    g), ``M`` the three coefficients of each group (a small matrix made in
+    numpy): one matrix product over the batch, few tensor operations."""
+    torch = torch_module()
+    groups = list(groups)
+    k = len(groups)
+    counts = torch.bincount(codes).tolist()
+    coefficients = np.zeros((2 * k, 2 * k))
+    for j, g in enumerate(groups):
+        m = counts[g] if g < len(counts) else 0
+        n = len(codes) - m
+        coefficients[j, j] = 1.0 / (m * (m - 1))
+        coefficients[k + j, k + j] = 1.0 / (n * (n - 1))
+        coefficients[j, k + j] = coefficients[k + j, j] = -1.0 / (m * n)
+    inside = codes[:, None] == torch.as_tensor(groups, device=codes.device)[None, :]
+    v = torch.cat([inside, ~inside], dim=1).to(dtype or torch.float32)
+    m_tensor = torch.from_numpy(coefficients / k).to(v.dtype).to(v.device)
+    return ((v @ m_tensor) @ v.T).fill_diagonal_(0.0)
+
+
+_KERNEL_MMD = None
+
+
+def kernel_mmd2(z, weights, scales, median: float | None = None):
+    """``sum_ij weights_ij sum_s exp(-|z_i - z_j|^2 / (2 w_s^2))`` with widths
+    ``w_s = scale_s x median`` (by default the median heuristic,
+    :func:`median_widths`), with the gradient in ``z`` written out: the
+    256 x 256 kernel leaves no autograd graph, one pass builds the value and
+    dL/d(d2), and one matrix product gives dL/dz. With ``weights`` from
+    :func:`contrast_weights` it is the unbiased MMD^2; tests/test_neural.py
+    checks value and gradient against the published estimator and autograd."""
+    global _KERNEL_MMD
+    torch = torch_module()
+    if _KERNEL_MMD is None:
+        class KernelMMD(torch.autograd.Function):
+            @staticmethod
+            def forward(ctx, z, weights, scales, median):
+                d2 = _squared_distances(z)
+                widths = median_widths(d2, scales) if median is None else [median * s for s in scales]
+                flat_weights = weights.reshape(-1)
+                value = z.new_zeros(())
+                slope = torch.zeros_like(d2)  # dL/d(d2_ij)
+                for w, kernel in zip(widths, _gaussians(d2, widths)):
+                    value = value + torch.dot(flat_weights, kernel.reshape(-1))
+                    slope.add_(kernel, alpha=-0.5 / (w * w))
+                slope.mul_(weights)
+                ctx.save_for_backward(z, slope)
+                return value
+
+            @staticmethod
+            def backward(ctx, grad):
+                z, slope = ctx.saved_tensors
+                # d2_ij = |z_i - z_j|^2 and slope is symmetric:
+                # dL/dz_i = 4 sum_j slope_ij (z_i - z_j)
+                grad_z = 4.0 * grad * (slope.sum(dim=1, keepdim=True) * z - slope @ z)
+                return grad_z, None, None, None
+
+        _KERNEL_MMD = KernelMMD
+    return _KERNEL_MMD.apply(z, weights, tuple(scales), median)
 
 
 class MMDPenalty:
@@ -309,22 +472,24 @@ class _MMDState:
         return None
 
     def encoder_term(self, xb, zb, idx, epoch: int, detector):
-        self.probe.step(zb, idx)
+        probe_loss = self.probe.loss(zb, idx)
         codes = self.codes[idx]
         weight = _ramped(self.spec.weight, epoch, self.spec.warmup_epochs, self.spec.ramp_epochs)
-        kernel = gaussian_kernel(zb, self.spec.bandwidth_scales)  # once per batch, shared by every group
         # each group against the rest of the batch: binary, multi-valued and intersectional alike
         # (with two groups, the second comparison is the first one again)
-        groups = range(1) if len(self.members) == 2 else range(len(self.members))
-        terms = [mmd2_from_kernel(kernel, codes == g) for g in groups
-                 if int((codes == g).sum()) >= 2 and int((codes != g).sum()) >= 2]
-        value = sum(terms) / max(len(terms), 1)
+        counts = torch_module().bincount(codes, minlength=len(self.members)).tolist()
+        groups = [g for g in (range(1) if len(self.members) == 2 else range(len(self.members)))
+                  if counts[g] >= 2 and len(idx) - counts[g] >= 2]
+        if not groups:
+            value = zb.sum() * 0.0
+        else:
+            value = kernel_mmd2(zb, contrast_weights(codes, groups), self.spec.bandwidth_scales)
         self._sum += float(value.detach())
         self._batches_seen += 1
-        return weight * value
+        return weight * value + probe_loss
 
     def after_encoder_step(self):
-        return None
+        self.probe.update()
 
     def epoch_summary(self) -> dict[str, float]:
         row = {"mmd": self._sum / max(self._batches_seen, 1),
@@ -403,6 +568,12 @@ class AdversarialDetector(FairTrainedDetector):
     reinit_every : int
         Re-initialise the adversaries every this many epochs (0: never), so the
         encoder cannot settle on fooling one particular adversary.
+    refit_steps : int
+        Before each epoch, train the adversaries this many full-batch steps on
+        the current embedding of the training rows (0: never). The encoder
+        otherwise outruns adversaries that see one batch at a time; with
+        ``reinit_every=1`` each epoch faces a fresh adversary trained to near
+        convergence, which is what a held-out probe is.
     adversary_hidden, adversary_steps, adversary_lr
         Each adversary's widths, updates per encoder update, learning rate.
     warmup_epochs, ramp_epochs : int
@@ -417,7 +588,7 @@ class AdversarialDetector(FairTrainedDetector):
     def __init__(self, base: dict | None = None, weight: float = 1.0, adversary_hidden: list[int] | None = None,
                  adversary_steps: int = 5, warmup_epochs: int = 0, ramp_epochs: int = 0, mode: str = "alternating",
                  adversary_lr: float = 1e-2, encoder_target: str = "maximise", n_adversaries: int = 1,
-                 reinit_every: int = 0, seed: int = 0):
+                 reinit_every: int = 0, refit_steps: int = 0, seed: int = 0):
         super().__init__(base, weight, seed)
         if mode not in MODES:
             raise DetectorError(f"mode '{mode}' is unknown; use one of {list(MODES)}")
@@ -428,6 +599,9 @@ class AdversarialDetector(FairTrainedDetector):
                 raise DetectorError(f"detector.{key} must be a whole number of at least 1, got {value!r}")
         if not isinstance(reinit_every, int) or reinit_every < 0:
             raise DetectorError(f"detector.reinit_every must be 0 (never) or a positive number of epochs, got {reinit_every!r}")
+        if not isinstance(refit_steps, int) or refit_steps < 0:
+            raise DetectorError(f"detector.refit_steps must be 0 (never) or a positive number of steps, "
+                                f"got {refit_steps!r}")
         self.adversary_hidden = list(adversary_hidden) if adversary_hidden is not None else [32]
         self.adversary_steps = adversary_steps
         self.warmup_epochs = warmup_epochs
@@ -437,11 +611,12 @@ class AdversarialDetector(FairTrainedDetector):
         self.encoder_target = encoder_target
         self.n_adversaries = n_adversaries
         self.reinit_every = reinit_every
+        self.refit_steps = refit_steps
 
     def _penalty(self):
         return AdversaryPenalty(self.weight, self.adversary_hidden, self.adversary_steps, self.adversary_lr,
                                 self.warmup_epochs, self.ramp_epochs, self.mode, self.encoder_target,
-                                self.n_adversaries, self.reinit_every, self.seed)
+                                self.n_adversaries, self.reinit_every, self.seed, self.refit_steps)
 
 
 class DistributionMatchingDetector(FairTrainedDetector):

@@ -96,7 +96,7 @@ class _FairODState:
         return None
 
     def encoder_term(self, xb, zb, idx, epoch, detector):
-        self.probe.step(zb, idx)
+        probe_loss = self.probe.loss(zb, idx)
         scores = detector.row_scores(xb, zb)
         codes = self.codes[idx]
         parity = parity_correlation(scores, codes, self.n_groups)
@@ -105,10 +105,10 @@ class _FairODState:
         self._fidelity += float(fidelity.detach())
         self._batches += 1
         weight = _ramped(self.spec.weight, epoch, self.spec.warmup_epochs, 0)
-        return weight * parity + self.spec.fidelity_weight * fidelity
+        return weight * parity + self.spec.fidelity_weight * fidelity + probe_loss
 
     def after_encoder_step(self):
-        return None
+        self.probe.update()
 
     def epoch_summary(self):
         n = max(self._batches, 1)

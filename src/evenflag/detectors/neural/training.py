@@ -81,7 +81,10 @@ def group_codes(group, who: str, min_rows: int = 2) -> tuple[list[str], np.ndarr
 
 
 class PenaltyState(Protocol):
-    """What the training loop asks of a fairness penalty during one fit."""
+    """What the training loop asks of a fairness penalty during one fit.
+    Optional: ``batches(n, batch_size, generator)`` (its own batch sampler) and
+    ``before_epoch(X, encode)`` (called before each epoch with the training
+    rows and the encoder's differentiable map of a tensor of rows)."""
 
     def before_encoder_step(self, zb, idx) -> None: ...
 
@@ -175,6 +178,8 @@ class NeuralDetector:
         for epoch in range(self.epochs):
             self._train_mode()
             total = torch.zeros((), device=self.device_)
+            if state is not None and hasattr(state, "before_epoch"):
+                state.before_epoch(X, self._encode)
             for idx in (state.batches(len(X), self.batch_size, generator) if state is not None and
                         hasattr(state, "batches") else self._batches(len(X), generator)):
                 xb = X[idx]
