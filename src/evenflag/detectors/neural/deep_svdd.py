@@ -106,6 +106,10 @@ class DeepSVDDDetector(NeuralDetector):
         dist = self._distances(self.encoder_(X))
         return dist - self.radius_ ** 2 if self.objective == "soft_boundary" else dist
 
+    def row_scores(self, xb, zb):
+        dist = self._distances(zb)  # the batch's embedding is at hand: no second encoder pass
+        return dist - self.radius_ ** 2 if self.objective == "soft_boundary" else dist
+
 
 def center_from_mean(mean, eps: float):
     """The hypersphere centre: coordinates with ``|c_j| < eps`` are pushed to

@@ -429,11 +429,41 @@ def kernel_mmd2(z, weights, scales, median: float | None = None):
     return _KERNEL_MMD.apply(z, weights, tuple(scales), median)
 
 
+# ---------------------------------------------------------------- score distributions
+def wasserstein1(a, b):
+    """Wasserstein-1 distance between the empirical distributions of the 1-d
+    tensors ``a`` and ``b`` (any sizes), differentiable in both: the integral
+    over u in (0, 1) of |F_a^-1(u) - F_b^-1(u)|, exact for step quantile
+    functions, taken over the merged breakpoints i/m and j/n (the sorted-quantile
+    form; equal to scipy.stats.wasserstein_distance, tests/test_neural.py)."""
+    torch = torch_module()
+    a_sorted, b_sorted = torch.sort(a).values, torch.sort(b).values
+    m, n = len(a), len(b)
+    dtype = a_sorted.dtype
+    cuts = torch.sort(torch.cat([torch.arange(1, m + 1, dtype=dtype, device=a.device) / m,
+                                 torch.arange(1, n + 1, dtype=dtype, device=a.device) / n])).values
+    lengths = torch.diff(cuts, prepend=cuts.new_zeros(1))
+    middle = cuts - lengths / 2  # strictly inside each interval of positive length
+    ia = torch.clamp((middle * m).long(), max=m - 1)
+    ib = torch.clamp((middle * n).long(), max=n - 1)
+    return (lengths * (a_sorted[ia] - b_sorted[ib]).abs()).sum()
+
+
+def score_distance_term(scores, codes, groups):
+    """Mean over ``groups`` of W1(scores of the group, scores of the rest of the
+    batch), divided by the batch's score standard deviation so the encoder
+    cannot lower it by shrinking every score alike."""
+    torch = torch_module()
+    terms = [wasserstein1(scores[codes == g], scores[codes != g]) for g in groups]
+    return torch.stack(terms).mean() / (scores.std() + 1e-12)
+
+
 class MMDPenalty:
     def __init__(self, weight: float, bandwidth_scales: list[float], min_rows_per_group: int, warmup_epochs: int,
-                 ramp_epochs: int, seed: int):
+                 ramp_epochs: int, seed: int, score_weight: float = 0.0):
         self.weight, self.bandwidth_scales, self.min_rows_per_group = weight, list(bandwidth_scales), min_rows_per_group
         self.warmup_epochs, self.ramp_epochs, self.seed = warmup_epochs, ramp_epochs, seed
+        self.score_weight = score_weight
 
     def start(self, group, detector: NeuralDetector, device):
         return _MMDState(self, group, detector.embedding_dim, device)
@@ -448,7 +478,7 @@ class _MMDState:
         self.probe = MonitorProbe(self.codes, len(values), embedding_dim, device, spec.seed)
         self.members = [torch.from_numpy(np.flatnonzero(codes == g)) for g in range(len(values))]
         self.epoch = 0
-        self._sum, self._batches_seen = 0.0, 0
+        self._sum, self._score_sum, self._batches_seen = 0.0, 0.0, 0
 
     def batches(self, n: int, batch_size: int, generator):
         """Batches that hold at least ``min_rows_per_group`` rows of every group:
@@ -480,22 +510,35 @@ class _MMDState:
         counts = torch_module().bincount(codes, minlength=len(self.members)).tolist()
         groups = [g for g in (range(1) if len(self.members) == 2 else range(len(self.members)))
                   if counts[g] >= 2 and len(idx) - counts[g] >= 2]
-        if not groups:
-            value = zb.sum() * 0.0
-        else:
-            value = kernel_mmd2(zb, contrast_weights(codes, groups), self.spec.bandwidth_scales)
-        self._sum += float(value.detach())
+        term = probe_loss
         self._batches_seen += 1
-        return weight * value + probe_loss
+        if groups and self.spec.weight > 0:
+            value = kernel_mmd2(zb, contrast_weights(codes, groups), self.spec.bandwidth_scales)
+            self._sum += float(value.detach())
+            term = term + weight * value
+        if groups and self.spec.score_weight > 0:
+            distance = score_distance_term(detector.row_scores(xb, zb), codes, groups)
+            self._score_sum += float(distance.detach())
+            term = term + self._ramped_score_weight(epoch) * distance
+        return term
+
+    def _ramped_score_weight(self, epoch: int) -> float:
+        return _ramped(self.spec.score_weight, epoch, self.spec.warmup_epochs, self.spec.ramp_epochs)
 
     def after_encoder_step(self):
         self.probe.update()
 
     def epoch_summary(self) -> dict[str, float]:
-        row = {"mmd": self._sum / max(self._batches_seen, 1),
-               "mmd_weight": _ramped(self.spec.weight, self.epoch, self.spec.warmup_epochs, self.spec.ramp_epochs),
-               **self.probe.summary()}
-        self._sum, self._batches_seen = 0.0, 0
+        seen = max(self._batches_seen, 1)
+        row = {}
+        if self.spec.weight > 0:
+            row["mmd"] = self._sum / seen
+            row["mmd_weight"] = _ramped(self.spec.weight, self.epoch, self.spec.warmup_epochs, self.spec.ramp_epochs)
+        if self.spec.score_weight > 0:
+            row["score_w1"] = self._score_sum / seen
+            row["score_weight"] = self._ramped_score_weight(self.epoch)
+        row.update(self.probe.summary())
+        self._sum, self._score_sum, self._batches_seen = 0.0, 0.0, 0
         self.epoch += 1
         return row
 
@@ -621,12 +664,17 @@ class AdversarialDetector(FairTrainedDetector):
 
 class DistributionMatchingDetector(FairTrainedDetector):
     """A neural detector whose loss adds ``weight`` times the maximum mean
-    discrepancy between each group's embeddings and the rest of the batch.
+    discrepancy between each group's embeddings and the rest of the batch,
+    and optionally ``score_weight`` times the Wasserstein-1 distance between
+    the group's anomaly scores and the rest's.
 
     The kernel is a sum of Gaussians whose widths are ``bandwidth_scales``
     times the batch's median pairwise distance (the median heuristic); batches
     are dealt so that each holds at least ``min_rows_per_group`` rows of every
-    group. With ``weight=0`` the base is trained exactly as alone.
+    group. The score term (:func:`score_distance_term`) is divided by the
+    batch's score spread, so it is about the shape of the groups' score
+    distributions, the thing ``score_distance`` measures, not their scale.
+    With ``weight=0`` and ``score_weight=0`` the base is trained exactly as alone.
 
     Examples
     --------
@@ -643,8 +691,12 @@ class DistributionMatchingDetector(FairTrainedDetector):
     who = "the distribution-matching detector"
 
     def __init__(self, base: dict | None = None, weight: float = 3.0, bandwidth_scales: list[float] | None = None,
-                 min_rows_per_group: int = 16, warmup_epochs: int = 0, ramp_epochs: int = 0, seed: int = 0):
+                 min_rows_per_group: int = 16, warmup_epochs: int = 0, ramp_epochs: int = 0,
+                 score_weight: float = 0.0, seed: int = 0):
         super().__init__(base, weight, seed)
+        if not score_weight >= 0:
+            raise DetectorError(f"detector.score_weight must be >= 0, got {score_weight!r}")
+        self.score_weight = score_weight
         if not isinstance(min_rows_per_group, int) or min_rows_per_group < 2:
             raise DetectorError(f"detector.min_rows_per_group must be at least 2, got {min_rows_per_group!r}")
         self.bandwidth_scales = list(bandwidth_scales) if bandwidth_scales is not None else [0.5, 1.0, 2.0]
@@ -655,7 +707,7 @@ class DistributionMatchingDetector(FairTrainedDetector):
         self.ramp_epochs = ramp_epochs
 
     def _penalty(self):
-        if self.weight == 0:
+        if self.weight == 0 and self.score_weight == 0:
             return None  # exactly the base: same batches, same steps
         return MMDPenalty(self.weight, self.bandwidth_scales, self.min_rows_per_group, self.warmup_epochs,
-                          self.ramp_epochs, self.seed)
+                          self.ramp_epochs, self.seed, self.score_weight)
