@@ -29,6 +29,7 @@ VARIANTS = {
     "adv_maximise_w1": {"name": "adversarial", "weight": 1.0, "base": BASE},
     "adv_maximise_w3": {"name": "adversarial", "weight": 3.0, "base": BASE},
     "adv_maximise_steps5": {"name": "adversarial", "weight": 1.0, "adversary_steps": 5, "base": BASE},
+    "adv_maximise_w10": {"name": "adversarial", "weight": 10.0, "base": BASE},
     "adv_reversal_w1": {"name": "adversarial", "weight": 1.0, "mode": "gradient_reversal", "base": BASE},
     "adv_confusion_w1": {"name": "adversarial", "weight": 1.0, "encoder_target": "confusion", "base": BASE},
     "adv_confusion_w3": {"name": "adversarial", "weight": 3.0, "encoder_target": "confusion", "base": BASE},
