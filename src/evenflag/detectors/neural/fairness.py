@@ -147,22 +147,18 @@ class _AdversaryState:
             rows = torch.randperm(len(X))[:REFIT_ROWS] if len(X) > REFIT_ROWS else torch.arange(len(X))
         with torch.no_grad():
             z = standardise(encode(X[rows]))
-        target = self.codes[rows]
-        for net, optimizer in zip(self.nets, self.optimizers):
-            for _ in range(self.spec.refit_steps):
-                loss = self.loss_fn(net(z), target)
-                optimizer.zero_grad(set_to_none=True)
-                loss.backward()
-                optimizer.step()
+        self._train(z, self.codes[rows], self.spec.refit_steps)
 
     def before_encoder_step(self, z, idx):
         """Train every adversary on the batch's detached embedding (alternating mode)."""
         if self.spec.mode != "alternating":
             return
-        target = self.codes[idx]
-        z = standardise(z)  # detached: the same input for every step
+        self._train(standardise(z), self.codes[idx], self.spec.steps)
+
+    def _train(self, z, target, steps: int) -> None:
+        """``steps`` updates of every adversary on the (detached, standardised) ``z``."""
         for net, optimizer in zip(self.nets, self.optimizers):
-            for _ in range(self.spec.steps):
+            for _ in range(steps):
                 loss = self.loss_fn(net(z), target)
                 optimizer.zero_grad(set_to_none=True)
                 loss.backward()
