@@ -227,7 +227,7 @@ def test_refitted_adversary_catches_up_with_a_logistic_regression():
     penalty = AdversaryPenalty(weight=1.0, hidden=[], steps=1, lr=0.05, warmup_epochs=0, ramp_epochs=0,
                                mode="alternating", encoder_target="confusion", n_adversaries=1, reinit_every=0,
                                seed=0, refit_steps=300)
-    state = penalty.start(group, type("Detector", (), {"embedding_dim": 4})(), torch.device("cpu"))
+    state = penalty.start(group, DeepSVDDDetector(embedding_dim=4), torch.device("cpu"))
     X = torch.from_numpy(z)
     state.before_epoch(X, lambda rows: rows)
     with torch.no_grad():

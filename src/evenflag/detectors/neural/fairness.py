@@ -238,6 +238,7 @@ class MonitorProbe:
         self.optimizer = _adam(self.net.parameters(), 1e-2)
         self.loss_fn = torch.nn.CrossEntropyLoss()
         self.correct, self.seen = 0, 0
+        self.calls, self._pending = 0, False
 
     EVERY = 4  # one update every this many batches: enough for a curve, a quarter of the cost
 
@@ -247,7 +248,7 @@ class MonitorProbe:
         one backward pass of the batch fills only the probe's gradients, and
         :meth:`update` then steps it (one backward pass instead of two)."""
         torch = torch_module()
-        self.calls = getattr(self, "calls", 0) + 1
+        self.calls += 1
         self._pending = False
         if len(idx) < 2 or self.calls % self.EVERY:
             return 0.0
@@ -358,7 +359,7 @@ def gaussian_kernel_mmd2(x, y, bandwidths):
     return mmd2_from_kernel(k, inside)
 
 
-def contrast_weights(codes, groups, dtype=None):
+def contrast_weights(codes, groups, dtype=None, counts: list[int] | None = None):
     """The matrix ``C`` with ``sum_ij C_ij k_ij`` = the mean over ``groups`` of
     MMD^2_u(group g, rest of the batch) for any kernel matrix ``k``: 1/(m(m-1))
     inside the group, 1/(n(n-1)) inside the rest, -1/(mn) across, 0 on the
@@ -366,11 +367,12 @@ def contrast_weights(codes, groups, dtype=None):
 
     Built as ``V M V^T``: ``V`` holds each row's indicators (in group g, not in
     g), ``M`` the three coefficients of each group (a small matrix made in
-    numpy): one matrix product over the batch, few tensor operations."""
+    numpy): one matrix product over the batch, few tensor operations.
+    ``counts`` (rows per group code) saves counting again when the caller has them."""
     torch = torch_module()
     groups = list(groups)
     k = len(groups)
-    counts = torch.bincount(codes).tolist()
+    counts = counts if counts is not None else torch.bincount(codes).tolist()
     coefficients = np.zeros((2 * k, 2 * k))
     for j, g in enumerate(groups):
         m = counts[g] if g < len(counts) else 0
@@ -509,7 +511,7 @@ class _MMDState:
         term = probe_loss
         self._batches_seen += 1
         if groups and self.spec.weight > 0:
-            value = kernel_mmd2(zb, contrast_weights(codes, groups), self.spec.bandwidth_scales)
+            value = kernel_mmd2(zb, contrast_weights(codes, groups, counts=counts), self.spec.bandwidth_scales)
             self._sum += float(value.detach())
             term = term + weight * value
         if groups and self.spec.score_weight > 0:
