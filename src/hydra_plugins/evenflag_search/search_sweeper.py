@@ -37,6 +37,8 @@ from hydra.plugins.sweeper import Sweeper
 from hydra.types import HydraContext, TaskFunction
 from omegaconf import DictConfig, OmegaConf
 
+from evenflag.runner.reusing_loader import reusing_context
+
 DIRECTIONS = ("maximize", "minimize")
 SAMPLERS = ("tpe", "nsga2", "random")
 
@@ -140,6 +142,7 @@ class SearchSweeper(Sweeper):
         self.hydra_context: Optional[HydraContext] = None
 
     def setup(self, *, hydra_context: HydraContext, task_function: TaskFunction, config: DictConfig) -> None:
+        hydra_context = reusing_context(hydra_context)  # trials differ in plain values: compose them from a copy
         self.hydra_context, self.config = hydra_context, config
         self.launcher = Plugins.instance().instantiate_launcher(hydra_context=hydra_context,
                                                                 task_function=task_function, config=config)
