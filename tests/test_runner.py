@@ -138,9 +138,27 @@ def test_stale_running_run_is_closed_on_next_launch(tmp_path):
 
 
 def test_parallel_joblib_launcher(tmp_path):
-    result = evenflag(tmp_path, "run", "-m", "hydra/launcher=parallel", *SMALL, "study=par", "seed=0,1,2")
+    """Jobs run in worker processes; a worker prepares the store (and ends a
+    dead launch's run), so the launching process itself never imports MLflow."""
+    from mlflow.tracking import MlflowClient
+
+    db = tmp_path / "outputs" / "tracking"
+    db.mkdir(parents=True)
+    client = MlflowClient(tracking_uri=f"sqlite:///{db / 'mlflow.db'}")
+    experiment = client.create_experiment("par", artifact_location=(db / "artifacts" / "par").as_uri())
+    gone = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    stale = client.create_run(experiment, tags={"evenflag.host": socket.gethostname(),
+                                                "evenflag.pid": gone.stdout.strip()})
+    launch = ("import sys; from evenflag.cli import main; code = main(sys.argv[1:]); "
+              "print('launcher imported mlflow:', 'mlflow' in sys.modules); sys.exit(code)")
+    result = subprocess.run([sys.executable, "-c", launch, "run", "-m", "hydra/launcher=parallel", *SMALL,
+                             "study=par", "seed=0,1,2"], cwd=tmp_path, capture_output=True, text=True, timeout=300,
+                            env={**os.environ, "PYTHONPATH": str(REPO)})
     assert result.returncode == 0, result.stderr
-    runs = runs_of(client_for(tmp_path), "par")
+    assert "launcher imported mlflow: False" in result.stdout
+    assert "marked 1 run(s) left RUNNING by an interrupted launch as KILLED" in result.stdout
+    assert client.get_run(stale.info.run_id).info.status == "KILLED"
+    runs = [r for r in runs_of(client_for(tmp_path), "par") if r.info.run_id != stale.info.run_id]
     assert len(runs) == 3 and {r.info.status for r in runs} == {"FINISHED"}
     assert len({r.data.tags["evenflag.pid"] for r in runs}) >= 2  # really ran in worker processes
 
@@ -191,6 +209,10 @@ def test_sweep_to_an_mlflow_server_on_loopback(tmp_path):
     (["seed=0,1"], "add -m"),
     # Values checked at launch, before any job trains (ranges from the settings' own docs).
     (["threshold.fraction=1.5"], "threshold.fraction must be between 0 and 1 (exclusive), got 1.5"),
+    # The parallel launcher starts its workers before these checks; a failed check ends them.
+    (["-m", "hydra/launcher=parallel", "seed=0,1", "threshold.fraction=1.5"],
+     "threshold.fraction must be between 0 and 1 (exclusive), got 1.5"),
+    (["-m", "hydra/launcher=parallel", "seed=0,x"], "seed: 'x' is not a valid integer"),
     (["detector=deep_svdd", "threshold.fraction=0"], "threshold.fraction must be between 0 and 1"),
     (["protocol.test_fraction=1"], "protocol.test_fraction must be between 0 and 1 (exclusive)"),
     (["protocol.test_anomaly_rate=2"], "protocol.test_anomaly_rate must be between 0 and 1 (exclusive) or null"),

@@ -72,24 +72,15 @@ def launch(argv: list[str]) -> int:
     # hand it flags first and every config folder as a search path.
     argv = (["--multirun"] if multirun else []) + _search_path(extra_dirs) + overrides
     combos, plain_values = _single_value_combinations(overrides, extra_dirs)
-    first = None
-    for combo in combos:
-        cfg = _compose(combo, extra_dirs)
-        first = first or cfg
-    _check_plain_values(first, plain_values)
-    if not multirun and (len(combos) > 1 or plain_values):
-        raise ConfigError("comma-separated values sweep several runs; add -m (evenflag run -m ...)")
-    if multirun and _is_search(first):
-        _check_search(first)
-    total = _count_jobs(overrides, first) if multirun else 1
-    if multirun and total == 0 and _is_search(first):
-        print(f"search '{first.study}': all {first.hydra.sweeper.n_trials} trials are done; raise "
-              "hydra.sweeper.n_trials to search further, or report it: evenflag report --study " + str(first.study))
-        return 0
+    first = _compose(combos[0], extra_dirs, check=False)
+    # A grid sweep on the parallel launcher starts its workers before the
+    # checks below, so that their imports (seconds) overlap with the checks'.
+    early = multirun and not _is_search(first) and _is_joblib(first)
+    if early:
+        _check_launcher(first)
 
-    _check_launcher(first)
     from evenflag.runner.lease import LAUNCH_ID_ENV, LAUNCHER_HOST_ENV, LAUNCHER_PID_ENV
-    from evenflag.runner.tracking import tracker_for, ui_command
+    from evenflag.runner.tracking import prepare_store, tracker_for, ui_command
 
     # The ledger lives under the launch directory (on clusters usually a shared
     # file system, unlike /tmp), one file per launch, removed at the end.
@@ -100,33 +91,60 @@ def launch(argv: list[str]) -> int:
     previous = signal.signal(signal.SIGTERM, _terminate)
     previous_sigint = signal.signal(signal.SIGINT, _interrupt)
     interrupted = "the launch ended"
-    tracker = None
+    uri = None
+    warming = None
+    finished = False
+    total = 0
     try:
-        # Set before any worker process starts: workers keep the environment they started with.
-        os.environ[ledger.LEDGER_ENV] = str(path)
-        os.environ[ledger.TOTAL_ENV] = str(total)
-        os.environ[ledger.START_ENV] = str(time.time())
-        os.environ[ledger.PLAN_ENV] = json.dumps(_detector_plan(overrides, first, total) if multirun else {})
-        # Jobs write the store the launcher prepared, even in other processes,
-        # and watch the launcher: workers whose launcher dies end their runs.
-        os.environ["EVENFLAG_LAUNCH_DIR"] = str(Path.cwd())
-        os.environ[LAUNCHER_PID_ENV] = str(os.getpid())
-        os.environ[LAUNCHER_HOST_ENV] = socket.gethostname()
-        os.environ[LAUNCH_ID_ENV] = launch_id
-        # Everything is checked, so no launch fails on its settings from here on.
-        warming = _start_workers(first) if multirun else None
+        def set_environment(total: int) -> None:
+            """Before any worker process starts: workers keep the environment they started with."""
+            os.environ[ledger.LEDGER_ENV] = str(path)
+            os.environ[ledger.TOTAL_ENV] = str(total)
+            os.environ[ledger.START_ENV] = str(time.time())
+            os.environ[ledger.PLAN_ENV] = json.dumps(_detector_plan(overrides, first, total) if multirun else {})
+            # Jobs write the store the launcher prepared, even in other processes,
+            # and watch the launcher: workers whose launcher dies end their runs.
+            os.environ["EVENFLAG_LAUNCH_DIR"] = str(Path.cwd())
+            os.environ[LAUNCHER_PID_ENV] = str(os.getpid())
+            os.environ[LAUNCHER_HOST_ENV] = socket.gethostname()
+            os.environ[LAUNCH_ID_ENV] = launch_id
 
-        tracker = tracker_for(first.tracking.uri, first.study, first.tracking.artifact_root, None,
-                              first.tracking.timeout_seconds, first.tracking.claim_settle_seconds)
-        tracker.experiment_id  # creates the store and the study once, before any job
-        closed = tracker.close_stale_runs()
+        if early:
+            total = _count_jobs(overrides, first)
+            set_environment(total)
+            warming = _start_workers(first)
+        from evenflag.runner.config import check_values
+
+        check_values(first)
+        for combo in combos[1:]:
+            _compose(combo, extra_dirs)
+        _check_plain_values(first, plain_values)
+        if not multirun and (len(combos) > 1 or plain_values):
+            raise ConfigError("comma-separated values sweep several runs; add -m (evenflag run -m ...)")
+        if multirun and _is_search(first):
+            _check_search(first)
+        if not early:
+            total = _count_jobs(overrides, first) if multirun else 1
+            if multirun and total == 0 and _is_search(first):
+                print(f"search '{first.study}': all {first.hydra.sweeper.n_trials} trials are done; raise "
+                      "hydra.sweeper.n_trials to search further, or report it: evenflag report --study " + str(first.study))
+                return 0
+            _check_launcher(first)
+            set_environment(total)
+            # Everything is checked, so no launch fails on its settings from here on.
+            warming = _start_workers(first) if multirun else None
+
+        store = (first.tracking.uri, first.study, first.tracking.artifact_root, None, first.tracking.timeout_seconds,
+                 first.tracking.claim_settle_seconds)
+        if warming is not None:  # a worker prepares the store, which keeps MLflow's imports off this process
+            uri, closed = warming.prepare_store(store)
+        else:
+            uri, closed = prepare_store(store)
         if closed:
             print(f"marked {closed} run(s) left RUNNING by an interrupted launch as KILLED")
         ledger.remove_stale(folder)
         path.parent.mkdir(parents=True, exist_ok=True)
         _STOPPED.clear()
-        if warming is not None:
-            warming.join()
         try:
             code = _call_hydra(_with_checked_sweeper(_force_keys_of_swept_groups(argv, overrides, extra_dirs), first)
                                if multirun else argv)
@@ -137,14 +155,19 @@ def launch(argv: list[str]) -> int:
         if _STOPPED:
             interrupted = "the launch was stopped (SIGTERM)"
         entries = ledger.read(path)
+        finished = len(entries) >= total and not _STOPPED
     finally:
         signal.signal(signal.SIGTERM, previous)
         signal.signal(signal.SIGINT, previous_sigint)
-        try:  # runs of this launch still RUNNING (in workers the launcher stopped): end them with the reason
-            if tracker is not None:
-                tracker.close_launch(launch_id, interrupted)
-        except Exception:  # the store is gone or unreachable: the lease closes them later
-            pass
+        if warming is not None:
+            warming.stop()  # the workers are idle now; ending them here spares the exit's wait for them
+        if uri is not None and not finished:
+            # Runs of this launch still RUNNING (in workers the launcher stopped):
+            # end them with the reason. Every job that reported ended its own run.
+            try:
+                tracker_for(*store).close_launch(launch_id, interrupted)
+            except Exception:  # the store is gone or unreachable: the lease closes them later
+                pass
         path.unlink(missing_ok=True)
         for key in (ledger.LEDGER_ENV, ledger.TOTAL_ENV, ledger.START_ENV, ledger.PLAN_ENV, LAUNCHER_PID_ENV,
                     LAUNCHER_HOST_ENV, LAUNCH_ID_ENV):
@@ -167,8 +190,8 @@ def launch(argv: list[str]) -> int:
             print(f"  failed: {entry['name']}: {entry['message']}")
     if len(entries) < total:
         print(f"  {total - len(entries)} job(s) did not report; see the log above")
-    print(f"results: {tracker.uri} (experiment '{first.study}')")
-    print(f"open them: {ui_command(tracker.uri)}")
+    print(f"results: {uri} (experiment '{first.study}')")
+    print(f"open them: {ui_command(uri)}")
     if _STOPPED:
         print("evenflag: stopped by SIGTERM; relaunch the same command to run what is missing", file=sys.stderr)
         return 143
@@ -205,9 +228,14 @@ def _terminate(signum, frame):
     raise SystemExit("SIGTERM")
 
 
+def _is_joblib(cfg: DictConfig) -> bool:
+    return str(OmegaConf.select(cfg, "hydra.launcher._target_") or "").endswith("JoblibLauncher")
+
+
 def _start_workers(cfg: DictConfig):
     """The parallel launcher's workers, started now and importing what a job
-    needs while this launch prepares (runner/warm.py); None for other launchers."""
+    needs (and loading its dataset) while this launch prepares (runner/warm.py);
+    None for other launchers."""
     from evenflag.runner.warm import JOB_MODULES, start_joblib_workers
 
     launcher = OmegaConf.to_container(OmegaConf.select(cfg, "hydra.launcher") or OmegaConf.create({}), resolve=True)
@@ -218,7 +246,11 @@ def _start_workers(cfg: DictConfig):
         modules = [m for m in (detector_module(detector), detector_module(detector.get("base") or {})) if m]
     except Exception:  # the jobs import their detector themselves
         modules = []
-    return start_joblib_workers(launcher, [*JOB_MODULES, *modules])
+    try:
+        dataset = OmegaConf.to_container(cfg.dataset, resolve=True)
+    except Exception:  # the jobs load (and report) it themselves
+        dataset = None
+    return start_joblib_workers(launcher, [*JOB_MODULES, *modules], dataset)
 
 
 def _check_launcher(cfg: DictConfig) -> None:
@@ -501,7 +533,7 @@ def _count_jobs(overrides: list[str], cfg: DictConfig) -> int:
     return max(total, 1)
 
 
-def _compose(overrides: list[str], extra_dirs: list[str]) -> DictConfig:
+def _compose(overrides: list[str], extra_dirs: list[str], check: bool = True) -> DictConfig:
     from hydra import compose, initialize_config_dir
     from hydra.errors import HydraException, MissingConfigException
     from omegaconf.errors import OmegaConfBaseException
@@ -518,9 +550,10 @@ def _compose(overrides: list[str], extra_dirs: list[str]) -> DictConfig:
     if missing:
         raise ConfigError(f"required value(s) not set: {', '.join(missing)}; set them on the command line, "
                           f"e.g. {missing[0]}=...")
-    from evenflag.runner.config import check_values
+    if check:
+        from evenflag.runner.config import check_values
 
-    check_values(cfg)
+        check_values(cfg)
     return cfg
 
 

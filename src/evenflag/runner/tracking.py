@@ -51,6 +51,16 @@ def tracker_for(uri: str | None, study: str, artifact_root: str | None = None, l
     return _OPEN[key]
 
 
+def prepare_store(settings: tuple) -> tuple[str, int]:
+    """Before any job of a launch: create the store and the study once (several
+    jobs creating them at once would collide) and end the runs that dead
+    launches left RUNNING. ``settings`` are ``tracker_for``'s arguments;
+    returns (the store's URI, how many runs were ended)."""
+    tracker = tracker_for(*settings)
+    tracker.experiment_id
+    return tracker.uri, tracker.close_stale_runs()
+
+
 class Tracker:
     """The study's MLflow experiment in one tracking store.
 
