@@ -153,11 +153,14 @@ class Tracker:
     def claim(self, fingerprint: str, run_name: str, tags: dict[str, str], rerun: bool = False):
         """(run_id, None) when this job may run the cell, else (None, reason)."""
         with self._lock():
-            if not rerun:
-                finished = self.find_finished(fingerprint)
-                if finished:
-                    return None, f"finished before as run {finished[:8]}"
-            for run in self._runs_of(fingerprint, "RUNNING"):
+            # One query for both questions, a finished run of the cell and a live
+            # claim of it (MLflow's filters cannot ask for two statuses at once).
+            runs = self.client.search_runs([self.experiment_id], filter_string=f"tags.`{TAG}fingerprint` = '{fingerprint}'",
+                                           max_results=1000)
+            finished = next((r.info.run_id for r in runs if r.info.status == "FINISHED"), None)
+            if finished and not rerun:
+                return None, f"finished before as run {finished[:8]}"
+            for run in (r for r in runs if r.info.status == "RUNNING"):
                 dead = is_dead(run.data.tags, TAG)
                 if dead:
                     self.kill(run.info.run_id, f"taken over: {dead}")
