@@ -12,11 +12,16 @@ the limit's (goal: at least 0.85).
 Measured on the 2-core development machine: 8 Deep SVDD runs 45.6 s against
 40.2 s (0.88 of the limit), 8 isolation-forest runs 18.0 s against 11.9 s
 (0.66). With the workers started and importing while the launch prepares
-(runner/warm.py): Deep SVDD 42.3 s against 39.8 s (0.94), isolation forest
-14.7-15.0 s against 10.6 s (0.70-0.72; 0.61 without, same session). What is
-left for the isolation forest: the launch's own start (imports, checks, the
-store) before the workers get jobs, and Hydra composing each job in a worker
-(about 0.3 s of each 1.2 s job).
+(runner/warm.py): Deep SVDD 0.94, isolation forest 0.70-0.72. With the
+workers started before the launch's checks, the store prepared in a worker
+and the workers ended when the sweep returns: isolation forest 0.85 and 0.91,
+Deep SVDD 1.00; after the launch stopped collecting garbage during its
+imports, which sped up the half-sweeps (9.5-11.3 s) more than the launcher
+(12.2-15.7 s): isolation forest medians 0.75-0.77 of 3 rounds, Deep SVDD
+0.85. The machine's own variation is about 10% between rounds. What is left
+for the isolation forest: 3 processes importing on 2 cores at the start (the
+launch's checks and both workers), and the store prepared after the imports
+(about 1 s for a new store) before the first job.
 """
 
 from __future__ import annotations

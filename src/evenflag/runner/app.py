@@ -249,23 +249,17 @@ def _is_joblib(cfg: DictConfig) -> bool:
 
 def _start_workers(cfg: DictConfig):
     """The parallel launcher's workers, started now and importing what a job
-    needs (and loading its dataset) while this launch prepares (runner/warm.py);
-    None for other launchers."""
+    needs (building its detector, loading its dataset) while this launch
+    prepares (runner/warm.py); None for other launchers."""
     from evenflag.runner.warm import JOB_MODULES, start_joblib_workers
 
     launcher = OmegaConf.to_container(OmegaConf.select(cfg, "hydra.launcher") or OmegaConf.create({}), resolve=True)
     try:
-        from evenflag.detectors.base import detector_module
-
         detector = OmegaConf.to_container(cfg.detector, resolve=True)
-        modules = [m for m in (detector_module(detector), detector_module(detector.get("base") or {})) if m]
-    except Exception:  # the jobs import their detector themselves
-        modules = []
-    try:
         dataset = OmegaConf.to_container(cfg.dataset, resolve=True)
-    except Exception:  # the jobs load (and report) it themselves
-        dataset = None
-    return start_joblib_workers(launcher, [*JOB_MODULES, *modules], dataset)
+    except Exception:  # the jobs build and load (and report) them themselves
+        detector = dataset = None
+    return start_joblib_workers(launcher, list(JOB_MODULES), dataset, detector)
 
 
 def _check_launcher(cfg: DictConfig) -> None:

@@ -4,7 +4,8 @@ Hydra's joblib launcher starts its worker processes only when the first jobs
 are handed out, after the launch has composed and checked every job and
 opened the store; each worker then spends seconds importing the libraries a
 job needs. Here the same workers start at the beginning of the launch and
-import, and load the sweep's dataset, while the launch checks its settings.
+import, build the sweep's first detector (without fitting it) and load its
+dataset, while the launch checks its settings.
 A worker then prepares the tracking store, so the launching process never
 imports MLflow (about 1.5 s) on the way to the first job. The workers are
 joblib's reusable ones: the launcher's own ``Parallel`` call, made with the
@@ -25,15 +26,27 @@ JOB_MODULES = ("evenflag.runner.app", "evenflag.runner.job", "evenflag.runner.ru
                "mlflow.store.tracking.sqlalchemy_store")
 
 
-def import_modules(modules: list[str], dataset: dict | None = None, cancel: str | None = None) -> None:
-    """Import ``modules`` and load ``dataset``, stopping early once the file
-    ``cancel`` exists (the launch failed its checks)."""
+def import_modules(modules: list[str], dataset: dict | None = None, cancel: str | None = None,
+                   detector: dict | None = None) -> None:
+    """Import ``modules``, build ``detector`` (a detector config: its libraries,
+    often imported only then, cost the first job most of a second) and load
+    ``dataset``, stopping early once the file ``cancel`` exists (the launch
+    failed its checks)."""
     for module in modules:
         if cancel and os.path.exists(cancel):
             return
         try:
             importlib.import_module(module)
         except Exception:  # a job that needs it reports the problem itself
+            pass
+    if detector is not None and not (cancel and os.path.exists(cancel)):
+        try:  # what the launch's own check does; nothing is fitted
+            from evenflag.detectors.base import build_detector
+
+            check = getattr(build_detector(detector, seed=0), "check_settings", None)
+            if callable(check):
+                check()
+        except Exception:  # the jobs build (and report) it themselves
             pass
     if dataset is not None and not (cancel and os.path.exists(cancel)):
         try:  # parsed once per process (data/registry.py), so the worker's first job finds it loaded
@@ -47,10 +60,11 @@ def import_modules(modules: list[str], dataset: dict | None = None, cancel: str 
 class Workers:
     """The warming workers of one launch."""
 
-    def __init__(self, arguments: dict, count: int, modules: list[str], dataset: dict | None):
+    def __init__(self, arguments: dict, count: int, modules: list[str], dataset: dict | None,
+                 detector: dict | None = None):
         self.arguments = arguments
         self.cancel = os.path.join(tempfile.gettempdir(), f"evenflag-warm-{os.getpid()}-{uuid.uuid4().hex}")
-        self.thread = threading.Thread(target=self._warm, args=(count, modules, dataset),
+        self.thread = threading.Thread(target=self._warm, args=(count, modules, dataset, detector),
                                        name="evenflag-warm-workers", daemon=True)
         self.thread.start()
 
@@ -59,11 +73,12 @@ class Workers:
 
         return Parallel(**self.arguments)
 
-    def _warm(self, count: int, modules: list[str], dataset: dict | None) -> None:
+    def _warm(self, count: int, modules: list[str], dataset: dict | None, detector: dict | None) -> None:
         from joblib import delayed
 
         try:
-            self._parallel()(delayed(import_modules)(list(modules), dataset, self.cancel) for _ in range(count))
+            self._parallel()(delayed(import_modules)(list(modules), dataset, self.cancel, detector)
+                             for _ in range(count))
         except Exception:  # only a head start; the launcher starts its workers anyway
             pass
 
@@ -99,10 +114,11 @@ class Workers:
                 os.unlink(self.cancel)
 
 
-def start_joblib_workers(launcher: dict, modules: list[str], dataset: dict | None = None) -> Workers | None:
+def start_joblib_workers(launcher: dict, modules: list[str], dataset: dict | None = None,
+                         detector: dict | None = None) -> Workers | None:
     """Start the workers of a joblib launcher config (``hydra.launcher``) in a
-    background thread that imports ``modules`` and loads ``dataset`` (a
-    dataset config) in each. None if the config is not the joblib launcher's."""
+    background thread that imports ``modules``, builds ``detector`` and loads
+    ``dataset`` (configs) in each. None if the config is not the joblib launcher's."""
     if not str(launcher.get("_target_", "")).endswith("JoblibLauncher"):
         return None
     from hydra_plugins.hydra_joblib_launcher._core import process_joblib_cfg
@@ -116,4 +132,4 @@ def start_joblib_workers(launcher: dict, modules: list[str], dataset: dict | Non
     count = effective_n_jobs(arguments.get("n_jobs") or 1)
     if count < 2:
         return None
-    return Workers(arguments, count, modules, dataset)
+    return Workers(arguments, count, modules, dataset, detector)
