@@ -87,10 +87,16 @@ class Workers:
         its errors (a store that cannot be used) are raised here as they are."""
         from joblib import delayed
 
+        from evenflag.errors import EvenflagError
         from evenflag.runner.tracking import prepare_store
 
         self.thread.join()
-        return self._parallel()([delayed(prepare_store)(settings)])[0]
+        try:
+            return self._parallel()([delayed(prepare_store)(settings)])[0]
+        except EvenflagError:
+            raise
+        except Exception:  # no worker could do it (the pool broke): here, as for the other launchers
+            return prepare_store(settings)
 
     def stop(self) -> None:
         """End the workers now: idle once the sweep returned; still importing
