@@ -1,4 +1,4 @@
-"""Compose each job of a sweep from the last job with the same config-group choices.
+"""Compose each job of a sweep from a copy: one composition per combination of config-group choices.
 
 Hydra composes every job of a sweep from scratch: it walks the defaults tree,
 loads and merges every yaml file, then applies the job's plain overrides
@@ -9,8 +9,9 @@ choices once per process, through Hydra itself, and makes every job from a
 copy of it with the job's plain overrides applied the way Hydra applies them.
 
 Which overrides are plain is Hydra's own decision (the defaults list's
-``config_overrides``), asked once per combination of group choices; a job
-whose overrides Hydra would treat differently is composed by Hydra in full.
+``config_overrides``), asked for the first job of a sweep and confirmed for
+every new combination of group choices; a job whose overrides Hydra would
+treat differently is composed by Hydra in full.
 Plain values cannot change the defaults tree (Hydra allows interpolations in
 a defaults list to reference group choices only), so a copy composed from the
 group choices and then given the plain overrides is the config Hydra builds.
