@@ -26,7 +26,7 @@ JOB_MODULES = ("evenflag.runner.app", "evenflag.runner.job", "evenflag.runner.ru
                "mlflow.store.tracking.sqlalchemy_store")
 
 
-def import_modules(modules: list[str], dataset: dict | None = None, cancel: str | None = None,
+def prepare_worker(modules: list[str], dataset: dict | None = None, cancel: str | None = None,
                    detector: dict | None = None) -> None:
     """Import ``modules``, build ``detector`` (a detector config: its libraries,
     often imported only then, cost the first job most of a second) and load
@@ -77,7 +77,7 @@ class Workers:
         from joblib import delayed
 
         try:
-            self._parallel()(delayed(import_modules)(list(modules), dataset, self.cancel, detector)
+            self._parallel()(delayed(prepare_worker)(list(modules), dataset, self.cancel, detector)
                              for _ in range(count))
         except Exception:  # only a head start; the launcher starts its workers anyway
             pass

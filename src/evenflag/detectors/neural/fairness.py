@@ -273,21 +273,6 @@ class MonitorProbe:
 
 
 # ---------------------------------------------------------------- MMD
-def mmd2_from_kernel(k, inside):
-    """Unbiased MMD^2 between the rows ``inside`` (m) and the others (n) of a
-    batch whose kernel matrix is ``k`` (Gretton et al., JMLR 2012, the unbiased
-    estimator MMD^2_u, their eq. 3). Block sums are taken as products with the
-    rows' indicator vectors, which avoids copying sub-matrices."""
-    a = inside.to(k.dtype)
-    b = 1.0 - a
-    m, n = a.sum(), b.sum()
-    diagonal = k.diagonal()
-    ka, kb = k @ a, k @ b
-    kxx = (a @ ka - (a * diagonal).sum()) / (m * (m - 1))
-    kyy = (b @ kb - (b * diagonal).sum()) / (n * (n - 1))
-    return kxx + kyy - 2 * (a @ kb) / (m * n)
-
-
 MEDIAN_ROWS = 128  # rows of a batch used for the median heuristic (enough for a stable median, and cheap)
 
 
@@ -348,15 +333,12 @@ def median_widths(d2, scales) -> list[float]:
 
 
 def gaussian_kernel_mmd2(x, y, bandwidths):
-    """Unbiased MMD^2 between samples ``x`` and ``y`` with a sum of Gaussian
-    kernels of fixed ``bandwidths``."""
+    """Unbiased MMD^2 (Gretton et al., JMLR 2012, eq. 3) between samples ``x``
+    and ``y`` with a sum of Gaussian kernels of fixed ``bandwidths``: the
+    training penalty's own computation, with ``x`` as the group."""
     torch = torch_module()
-    xy = torch.cat([x, y])
-    d2 = torch.cdist(xy, xy).pow(2)
-    k = sum(torch.exp(-d2 / (2 * s * s)) for s in bandwidths)
-    inside = torch.zeros(len(xy), dtype=torch.bool)
-    inside[:len(x)] = True
-    return mmd2_from_kernel(k, inside)
+    codes = torch.cat([torch.zeros(len(x), dtype=torch.long), torch.ones(len(y), dtype=torch.long)])
+    return kernel_mmd2(torch.cat([x, y]), contrast_weights(codes, [0], x.dtype), bandwidths, median=1.0)
 
 
 def contrast_weights(codes, groups, dtype=None, counts: list[int] | None = None):
