@@ -71,9 +71,13 @@ def test_kill_during_store_creation_never_breaks_the_store(tmp_path):
             done.result()
 
 
+LAUNCHERS = {"basic": [], "parallel": ["hydra/launcher=parallel"]}  # the parallel one prepares the store in a worker
+
+
 @pytest.mark.slow
-def test_three_launches_at_once_on_a_new_store(tmp_path):
-    sweep = ["run", "-m", *SMALL, "study=race", "seed=0,1,2,3"]
+@pytest.mark.parametrize("launcher", list(LAUNCHERS))
+def test_three_launches_at_once_on_a_new_store(tmp_path, launcher):
+    sweep = ["run", "-m", *LAUNCHERS[launcher], *SMALL, "study=race", "seed=0,1,2,3"]
     processes = [_start(tmp_path, *sweep) for _ in range(3)]
     results = [(p.wait(timeout=600), p.stdout.read(), p.stderr.read()) for p in processes]
     for code, stdout, stderr in results:
@@ -103,16 +107,17 @@ def test_rerun_replaces_and_the_older_run_is_marked_superseded(tmp_path):
 
 
 # ---------------------------------------------------------------- interrupted launches
-def _slow_sweep(study):
+def _slow_sweep(study, *launcher):
     # Deep SVDD with enough epochs that a run is in progress when the signal comes.
-    return ["run", "-m", *SMALL, f"study={study}", "detector=deep_svdd", "detector.epochs=400",
+    return ["run", "-m", *launcher, *SMALL, f"study={study}", "detector=deep_svdd", "detector.epochs=400",
             "detector.hidden=[16]", "seed=0,1"]
 
 
 @pytest.mark.slow
+@pytest.mark.parametrize("launcher", list(LAUNCHERS))
 @pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM])
-def test_interrupt_leaves_no_running_run(tmp_path, signum):
-    process = _start(tmp_path, *_slow_sweep("stop"))
+def test_interrupt_leaves_no_running_run(tmp_path, signum, launcher):
+    process = _start(tmp_path, *_slow_sweep("stop", *LAUNCHERS[launcher]))
     assert _wait_for(lambda: (tmp_path / "outputs" / "tracking" / "mlflow.db").exists(), 60)
     assert _wait_for(lambda: any(s == "RUNNING" for v in _status_by_cell(tmp_path, "stop").values() for s in v),
                      120, step=0.5)
