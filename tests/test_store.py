@@ -274,15 +274,17 @@ def test_unreachable_tracking_server_fails_fast(tmp_path):
     assert report.returncode == 2 and len(report.stderr.strip().splitlines()) == 1, report.stderr
 
 
+@pytest.mark.parametrize("launcher", list(LAUNCHERS))
 @pytest.mark.parametrize("content", [b"this is not a database" * 50, "truncated"])
-def test_damaged_store_is_one_line_and_left_untouched(tmp_path, content):
+def test_damaged_store_is_one_line_and_left_untouched(tmp_path, content, launcher):
     db = tmp_path.joinpath(*DB)
     if content == "truncated":
         assert evenflag(tmp_path, "run", *SMALL, "study=t").returncode == 0
         content = db.read_bytes()[: db.stat().st_size // 3]
     db.parent.mkdir(parents=True, exist_ok=True)
     db.write_bytes(content)
-    for args, fix in ((("run", *SMALL, "study=t"), "move it aside"), (("report", "--study", "t"), "restore")):
+    run = ("run", "-m", *LAUNCHERS[launcher], *SMALL, "study=t", "seed=0,1")  # parallel: a worker opens the store
+    for args, fix in ((run, "move it aside"), (("report", "--study", "t"), "restore")):
         result = evenflag(tmp_path, *args)
         assert result.returncode == 2 and len(result.stderr.strip().splitlines()) == 1, result.stderr
         assert "not a readable tracking store" in result.stderr and fix in result.stderr, result.stderr
@@ -323,6 +325,7 @@ def test_read_only_store_folder_is_one_line(tmp_path):
 
 @pytest.mark.parametrize("args, expected", [
     (["study="], "study is empty"),
+    (["-m", "hydra/launcher=parallel", "study=", "seed=0,1"], "study is empty"),  # raised in a worker
     (["tracking.uri=foo://bar"], "tracking.uri 'foo://bar' is not supported"),
     (["-m", "hydra/launcher=parallel", "hydra.launcher.n_jobs=0", "seed=0,1"], "hydra.launcher.n_jobs=0 is invalid"),
 ])

@@ -147,8 +147,7 @@ def _launch(argv: list[str]) -> int:
             # Everything is checked, so no launch fails on its settings from here on.
             warming = _start_workers(first) if multirun else None
 
-        store = (first.tracking.uri, first.study, first.tracking.artifact_root, None, first.tracking.timeout_seconds,
-                 first.tracking.claim_settle_seconds)
+        store = _store_settings(first)
         if warming is not None:  # a worker prepares the store, which keeps MLflow's imports off this process
             uri, closed = warming.prepare_store(store)
         else:
@@ -259,7 +258,17 @@ def _start_workers(cfg: DictConfig):
         dataset = OmegaConf.to_container(cfg.dataset, resolve=True)
     except Exception:  # the jobs build and load (and report) them themselves
         detector = dataset = None
-    return start_joblib_workers(launcher, list(JOB_MODULES), dataset, detector)
+    try:
+        store = _store_settings(cfg)
+    except Exception:  # the launch reports it after its checks, and prepares the store itself
+        store = None
+    return start_joblib_workers(launcher, list(JOB_MODULES), dataset, detector, store)
+
+
+def _store_settings(cfg: DictConfig) -> tuple:
+    """``tracker_for``'s arguments for a launch's config."""
+    return (cfg.tracking.uri, cfg.study, cfg.tracking.artifact_root, None, cfg.tracking.timeout_seconds,
+            cfg.tracking.claim_settle_seconds)
 
 
 def _check_launcher(cfg: DictConfig) -> None:

@@ -6,8 +6,10 @@ opened the store; each worker then spends seconds importing the libraries a
 job needs. Here the same workers start at the beginning of the launch and
 import, build the sweep's first detector (without fitting it) and load its
 dataset, while the launch checks its settings.
-A worker then prepares the tracking store, so the launching process never
-imports MLflow (about 1.5 s) on the way to the first job. The workers are
+One worker prepares the tracking store as soon as its imports are done and
+the launch's checks passed, while the others go on warming; the launching
+process never imports MLflow (about 1.5 s) on the way to the first job, and
+goes on to Hydra's set-up while the warm-up ends. The workers are
 joblib's reusable ones: the launcher's own ``Parallel`` call, made with the
 same arguments, gets them back with their imports done. Once the sweep is
 over they are ended at once instead of at the interpreter's exit.
@@ -15,31 +17,52 @@ over they are ended at once instead of at the interpreter's exit.
 
 from __future__ import annotations
 
+import gc
 import importlib
 import os
+import pickle
+import shutil
 import tempfile
 import threading
-import uuid
+import time
 
 # What any job imports: the job itself, the run, the tracking store.
 JOB_MODULES = ("evenflag.runner.app", "evenflag.runner.job", "evenflag.runner.run", "evenflag.runner.tracking",
                "mlflow.store.tracking.sqlalchemy_store")
 
 
-def prepare_worker(modules: list[str], dataset: dict | None = None, cancel: str | None = None,
-                   detector: dict | None = None) -> None:
-    """Import ``modules``, build ``detector`` (a detector config: its libraries,
-    often imported only then, cost the first job most of a second) and load
-    ``dataset``, stopping early once the file ``cancel`` exists (the launch
-    failed its checks)."""
-    for module in modules:
-        if cancel and os.path.exists(cancel):
-            return
-        try:
-            importlib.import_module(module)
-        except Exception:  # a job that needs it reports the problem itself
-            pass
-    if detector is not None and not (cancel and os.path.exists(cancel)):
+def prepare_worker(modules: list[str], dataset: dict | None = None, signals: str | None = None,
+                   detector: dict | None = None, store: tuple | None = None) -> None:
+    """Import ``modules``, prepare the tracking ``store`` if given (once the
+    launch's checks passed), build ``detector`` (a detector config: its
+    libraries, often imported only then, cost the first job most of a second)
+    and load ``dataset``. ``signals`` is the launch's folder of signal files
+    (``Signals``); once its cancel file exists (the launch failed its checks)
+    the worker stops early.
+
+    The imports run without garbage collection and what they made is then
+    frozen (``gc.freeze``), as in the launching process (app.launch): over
+    millions of imported objects CPython's collections would cost seconds,
+    and loky runs a full collection in its workers after each task of more
+    than a second (when psutil is absent).
+    """
+    signals = Signals(signals) if signals else None
+    cancelled = (lambda: signals.cancelled()) if signals else (lambda: False)
+    gc.disable()
+    try:
+        for module in modules:
+            if cancelled():
+                return
+            try:
+                importlib.import_module(module)
+            except Exception:  # a job that needs it reports the problem itself
+                pass
+    finally:
+        gc.freeze()
+        gc.enable()
+    if store is not None and signals is not None and signals.wait_for_checks():
+        signals.send_store(store)
+    if detector is not None and not cancelled():
         try:  # what the launch's own check does; nothing is fitted
             from evenflag.detectors.base import build_detector
 
@@ -48,7 +71,7 @@ def prepare_worker(modules: list[str], dataset: dict | None = None, cancel: str 
                 check()
         except Exception:  # the jobs build (and report) it themselves
             pass
-    if dataset is not None and not (cancel and os.path.exists(cancel)):
+    if dataset is not None and not cancelled():
         try:  # parsed once per process (data/registry.py), so the worker's first job finds it loaded
             from evenflag.data.registry import load_dataset, to_spec
 
@@ -57,46 +80,117 @@ def prepare_worker(modules: list[str], dataset: dict | None = None, cancel: str 
             pass
 
 
+class Signals:
+    """Files through which a launch and its warming workers talk while the
+    workers' warm-up runs (a joblib task's result comes back only at its end):
+    *checked* (the launch's checks passed: a worker may prepare the store),
+    *cancel* (they failed: stop) and *store* (the prepared store, or its error)."""
+
+    def __init__(self, folder: str):
+        self.folder = folder
+        self.checked_file = os.path.join(folder, "checked")
+        self.cancel_file = os.path.join(folder, "cancel")
+        self.store_file = os.path.join(folder, "store")
+
+    def cancelled(self) -> bool:
+        return os.path.exists(self.cancel_file)
+
+    def wait_for_checks(self) -> bool:
+        """In a worker: True once the launch's checks passed; False if they
+        failed or the launching process is gone."""
+        parent = os.getppid()
+        while not os.path.exists(self.checked_file):
+            if self.cancelled() or os.getppid() != parent:
+                return False
+            time.sleep(0.01)
+        return True
+
+    def send_store(self, settings: tuple) -> None:
+        """In a worker: ``tracking.prepare_store``'s result or error, for ``receive_store``."""
+        from evenflag.runner.tracking import prepare_store
+
+        try:
+            outcome = ("done", prepare_store(settings))
+        except Exception as error:  # the launch raises it as it is (a store that cannot be used)
+            outcome = ("error", error)
+        try:
+            payload = pickle.dumps((settings, outcome))
+        except Exception:  # an error that cannot be pickled: the launch prepares the store itself
+            return
+        partial = self.store_file + ".partial"
+        with open(partial, "wb") as handle:
+            handle.write(payload)
+        os.replace(partial, self.store_file)  # never read half-written
+
+    def receive_store(self, settings: tuple, waiting: threading.Thread):
+        """In the launch: the outcome sent for ``settings``, or None once
+        ``waiting`` (the warm-up) ended without one."""
+        while not os.path.exists(self.store_file):
+            if not waiting.is_alive() and not os.path.exists(self.store_file):
+                return None
+            time.sleep(0.01)
+        try:
+            with open(self.store_file, "rb") as handle:
+                sent, outcome = pickle.load(handle)
+        except Exception:  # an error of a kind that does not unpickle: the launch prepares the store itself
+            return None
+        return outcome if sent == settings else None
+
+
 class Workers:
     """The warming workers of one launch."""
 
     def __init__(self, arguments: dict, count: int, modules: list[str], dataset: dict | None,
-                 detector: dict | None = None):
+                 detector: dict | None = None, store: tuple | None = None):
         self.arguments = arguments
-        self.cancel = os.path.join(tempfile.gettempdir(), f"evenflag-warm-{os.getpid()}-{uuid.uuid4().hex}")
-        self.thread = threading.Thread(target=self._warm, args=(count, modules, dataset, detector),
+        self.signals = Signals(tempfile.mkdtemp(prefix=f"evenflag-warm-{os.getpid()}-"))
+        self.thread = threading.Thread(target=self._warm, args=(count, modules, dataset, detector, store),
                                        name="evenflag-warm-workers", daemon=True)
         self.thread.start()
+        _WARMING.append(self)
 
     def _parallel(self):
         from joblib import Parallel
 
         return Parallel(**self.arguments)
 
-    def _warm(self, count: int, modules: list[str], dataset: dict | None, detector: dict | None) -> None:
+    def _warm(self, count: int, modules: list[str], dataset: dict | None, detector: dict | None,
+              store: tuple | None) -> None:
         from joblib import delayed
 
-        try:
-            self._parallel()(delayed(prepare_worker)(list(modules), dataset, self.cancel, detector)
-                             for _ in range(count))
+        try:  # one worker prepares the store while the others go on warming
+            self._parallel()(delayed(prepare_worker)(list(modules), dataset, self.signals.folder, detector,
+                                                     store if task == 0 else None)
+                             for task in range(count))
         except Exception:  # only a head start; the launcher starts its workers anyway
             pass
 
     def prepare_store(self, settings: tuple) -> tuple[str, int]:
-        """``tracking.prepare_store`` run in a worker once the imports are done;
-        its errors (a store that cannot be used) are raised here as they are."""
-        from joblib import delayed
-
+        """``tracking.prepare_store`` for ``settings`` (the launch's checks
+        passed): as soon as a worker has prepared it, while the others still
+        warm up; its errors (a store that cannot be used) are raised here as
+        they are."""
         from evenflag.errors import EvenflagError
         from evenflag.runner.tracking import prepare_store
+
+        open(self.signals.checked_file, "w").close()
+        outcome = self.signals.receive_store(settings, self.thread)
+        if outcome is not None:
+            status, value = outcome
+            if status == "error":
+                raise value
+            return value
+        # No worker sent it (the pool broke, or the settings differ): in a worker now, or here.
+        from joblib import delayed
 
         self.thread.join()
         try:
             return self._parallel()([delayed(prepare_store)(settings)])[0]
         except EvenflagError:
             raise
-        except Exception:  # no worker could do it (the pool broke): here, as for the other launchers
+        except Exception:  # no worker could do it: here, as for the other launchers
             return prepare_store(settings)
+
 
     def stop(self) -> None:
         """End the workers now: idle once the sweep returned; still importing
@@ -105,7 +199,7 @@ class Workers:
         not wait for their imports."""
         try:
             if self.thread.is_alive():
-                open(self.cancel, "w").close()
+                open(self.signals.cancel_file, "w").close()
                 self.thread.join()
             from joblib.externals.loky import get_reusable_executor, reusable_executor
 
@@ -116,15 +210,30 @@ class Workers:
         except Exception:  # they end at the interpreter's exit as before
             pass
         finally:
-            if os.path.exists(self.cancel):
-                os.unlink(self.cancel)
+            shutil.rmtree(self.signals.folder, ignore_errors=True)
+            if self in _WARMING:
+                _WARMING.remove(self)
+
+
+# This process's warming workers, for wait_for_warm_up.
+_WARMING: list[Workers] = []
+
+
+def wait_for_warm_up() -> None:
+    """Until this process's workers finished warming up. Hydra's launcher calls
+    ``Parallel`` on the same workers; it waits here (the sweeper, just before
+    it launches) so that two ``Parallel`` calls never share them at once."""
+    for workers in list(_WARMING):
+        workers.thread.join()
 
 
 def start_joblib_workers(launcher: dict, modules: list[str], dataset: dict | None = None,
-                         detector: dict | None = None) -> Workers | None:
+                         detector: dict | None = None, store: tuple | None = None) -> Workers | None:
     """Start the workers of a joblib launcher config (``hydra.launcher``) in a
     background thread that imports ``modules``, builds ``detector`` and loads
-    ``dataset`` (configs) in each. None if the config is not the joblib launcher's."""
+    ``dataset`` (configs) in each, and in one of them prepares ``store``
+    (``tracker_for``'s arguments) once the launch says its checks passed.
+    None if the config is not the joblib launcher's."""
     if not str(launcher.get("_target_", "")).endswith("JoblibLauncher"):
         return None
     from hydra_plugins.hydra_joblib_launcher._core import process_joblib_cfg
@@ -138,4 +247,4 @@ def start_joblib_workers(launcher: dict, modules: list[str], dataset: dict | Non
     count = effective_n_jobs(arguments.get("n_jobs") or 1)
     if count < 2:
         return None
-    return Workers(arguments, count, modules, dataset, detector)
+    return Workers(arguments, count, modules, dataset, detector, store)

@@ -12,6 +12,7 @@ choices (reusing_loader.py), which cuts the remaining composition to a copy.
 from hydra._internal.core_plugins.basic_sweeper import BasicSweeper
 
 from evenflag.runner.reusing_loader import reusing_context
+from evenflag.runner.warm import wait_for_warm_up
 
 
 class CheckedSweeper(BasicSweeper):
@@ -19,4 +20,7 @@ class CheckedSweeper(BasicSweeper):
         super().setup(hydra_context=reusing_context(hydra_context), task_function=task_function, config=config)
 
     def validate_batch_is_legal(self, batch) -> None:
-        return None  # checked by evenflag run before the launch
+        # Checked by evenflag run before the launch. Called just before the
+        # batch is launched: the parallel launcher's workers end their warm-up
+        # (runner/warm.py) before its Parallel call takes them over.
+        wait_for_warm_up()

@@ -38,6 +38,7 @@ from hydra.types import HydraContext, TaskFunction
 from omegaconf import DictConfig, OmegaConf
 
 from evenflag.runner.reusing_loader import reusing_context
+from evenflag.runner.warm import wait_for_warm_up
 
 DIRECTIONS = ("maximize", "minimize")
 SAMPLERS = ("tpe", "nsga2", "random")
@@ -198,6 +199,7 @@ class SearchSweeper(Sweeper):
                      + [f"++tags.search_trial={trial.number}", f"++tags.search_params='{' '.join(distributions)}'",
                         f"++tags.search_objectives='{' '.join(f'{k}:{self.objectives[k]}' for k in keys)}'"]
                      for trial in trials]
+            wait_for_warm_up()  # the parallel launcher's workers (runner/warm.py) before its Parallel call
             results = self.launcher.launch(batch, initial_job_idx=job_index)
             job_index += len(batch)
             for trial, result in zip(trials, results):
