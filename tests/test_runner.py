@@ -138,8 +138,9 @@ def test_stale_running_run_is_closed_on_next_launch(tmp_path):
 
 
 def test_parallel_joblib_launcher(tmp_path):
-    """Jobs run in worker processes; a worker prepares the store (and ends a
-    dead launch's run), so the launching process itself never imports MLflow."""
+    """Jobs run in worker processes; a worker checks the detector's settings
+    and prepares the store (and ends a dead launch's run), so the launching
+    process itself never imports MLflow or scikit-learn."""
     from mlflow.tracking import MlflowClient
 
     db = tmp_path / "outputs" / "tracking"
@@ -150,12 +151,12 @@ def test_parallel_joblib_launcher(tmp_path):
     stale = client.create_run(experiment, tags={"evenflag.host": socket.gethostname(),
                                                 "evenflag.pid": gone.stdout.strip()})
     launch = ("import sys; from evenflag.cli import main; code = main(sys.argv[1:]); "
-              "print('launcher imported mlflow:', 'mlflow' in sys.modules); sys.exit(code)")
+              "print('launcher imported:', [m for m in ('mlflow', 'sklearn') if m in sys.modules]); sys.exit(code)")
     result = subprocess.run([sys.executable, "-c", launch, "run", "-m", "hydra/launcher=parallel", *SMALL,
                              "study=par", "seed=0,1,2"], cwd=tmp_path, capture_output=True, text=True, timeout=300,
                             env={**os.environ, "PYTHONPATH": str(REPO)})
     assert result.returncode == 0, result.stderr
-    assert "launcher imported mlflow: False" in result.stdout
+    assert "launcher imported: []" in result.stdout
     assert "marked 1 run(s) left RUNNING by an interrupted launch as KILLED" in result.stdout
     assert client.get_run(stale.info.run_id).info.status == "KILLED"
     runs = [r for r in runs_of(client_for(tmp_path), "par") if r.info.run_id != stale.info.run_id]
@@ -213,6 +214,13 @@ def test_sweep_to_an_mlflow_server_on_loopback(tmp_path):
     (["-m", "hydra/launcher=parallel", "seed=0,1", "threshold.fraction=1.5"],
      "threshold.fraction must be between 0 and 1 (exclusive), got 1.5"),
     (["-m", "hydra/launcher=parallel", "seed=0,x"], "seed: 'x' is not a valid integer"),
+    # ... and a worker builds the detectors to check them (the launch defers it).
+    (["-m", "hydra/launcher=parallel", "seed=0,1", "detector.n_estimators=abc"],
+     "The 'n_estimators' parameter of IsolationForest must be an int in the range [1, inf). Got 'abc'"),
+    (["-m", "hydra/launcher=parallel", "detector.n_estimators=10,-5"],
+     "detector.n_estimators=-5: sklearn.ensemble.IsolationForest: The 'n_estimators' parameter"),
+    (["-m", "hydra/launcher=parallel", "seed=0,1", "detector=deep_svdd", "detector.epochs=0"],
+     "detector.epochs must be a whole number of at least 1, got 0"),
     (["detector=deep_svdd", "threshold.fraction=0"], "threshold.fraction must be between 0 and 1"),
     (["protocol.test_fraction=1"], "protocol.test_fraction must be between 0 and 1 (exclusive)"),
     (["protocol.test_anomaly_rate=2"], "protocol.test_anomaly_rate must be between 0 and 1 (exclusive) or null"),

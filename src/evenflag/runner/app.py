@@ -128,10 +128,14 @@ def _launch(argv: list[str]) -> int:
             warming = _start_workers(first)
         from evenflag.runner.config import check_values
 
-        check_values(first)
+        # With warming workers, one of them builds the detectors to check them,
+        # so that this process never imports their libraries (seconds of CPU
+        # taken from the workers' imports): the checks are deferred to it.
+        deferred = [] if warming is not None else None
+        check_values(first, deferred)
         for combo in combos[1:]:
-            _compose(combo, extra_dirs)
-        _check_plain_values(first, plain_values)
+            _compose(combo, extra_dirs, deferred=deferred)
+        _check_plain_values(first, plain_values, deferred)
         if not multirun and (len(combos) > 1 or plain_values):
             raise ConfigError("comma-separated values sweep several runs; add -m (evenflag run -m ...)")
         if multirun and _is_search(first):
@@ -149,7 +153,7 @@ def _launch(argv: list[str]) -> int:
 
         store = _store_settings(first)
         if warming is not None:  # a worker prepares the store, which keeps MLflow's imports off this process
-            uri, closed = warming.prepare_store(store)
+            uri, closed = warming.prepare_store(store, deferred or [])
         else:
             uri, closed = prepare_store(store)
         if closed:
@@ -492,9 +496,9 @@ def _single_value_combinations(overrides: list[str], extra_dirs: list[str]):
     return combos, plain
 
 
-def _check_plain_values(cfg: DictConfig, plain_values: list[str]) -> None:
+def _check_plain_values(cfg: DictConfig, plain_values: list[str], deferred: list | None = None) -> None:
     """Each further value of a plain sweep (seed=0,1,abc) set into a copy of the
-    first config, where the schema checks its type."""
+    first config, where the schema checks its type (``deferred``: see check_values)."""
     from omegaconf.errors import OmegaConfBaseException
 
     from evenflag.runner.config import RunConfig
@@ -512,7 +516,7 @@ def _check_plain_values(cfg: DictConfig, plain_values: list[str]) -> None:
         except (OmegaConfBaseException, ValueError) as exc:
             raise ConfigError(_composition_message(exc, [text], [])) from exc
         try:
-            check_values(run)
+            check_values(run, deferred, label=text)
         except ConfigError as exc:
             raise ConfigError(f"{text}: {exc}") from exc
 
@@ -551,7 +555,8 @@ def _count_jobs(overrides: list[str], cfg: DictConfig) -> int:
     return max(total, 1)
 
 
-def _compose(overrides: list[str], extra_dirs: list[str], check: bool = True) -> DictConfig:
+def _compose(overrides: list[str], extra_dirs: list[str], check: bool = True,
+             deferred: list | None = None) -> DictConfig:
     from hydra import compose, initialize_config_dir
     from hydra.errors import HydraException, MissingConfigException
     from omegaconf.errors import OmegaConfBaseException
@@ -571,7 +576,7 @@ def _compose(overrides: list[str], extra_dirs: list[str], check: bool = True) ->
     if check:
         from evenflag.runner.config import check_values
 
-        check_values(cfg)
+        check_values(cfg, deferred)
     return cfg
 
 

@@ -65,17 +65,19 @@ def register() -> None:
     ConfigStore.instance().store(name=SCHEMA_NAME, node=RunConfig)
 
 
-def check_values(cfg) -> None:
+def check_values(cfg, deferred: list | None = None, label: str = "") -> None:
     """Every value of a composed run config that can be checked without data,
     checked before any job starts (one ConfigError naming the key and the fix).
 
     The schema above checks types; this checks ranges and names, and builds
-    the detector once so that its own argument checks (and scikit-learn's
-    parameter constraints) run at launch rather than after training."""
+    the detector once (``check_detector``). With a ``deferred`` list the
+    detector is appended to it instead, with ``label`` (the value that made
+    this config), for ``check_detectors`` to build later: a parallel
+    launcher's worker does it while the launch itself imports no detector
+    library (runner/warm.py)."""
     from omegaconf import OmegaConf
 
     from evenflag.data.protocol import check_spec as check_protocol
-    from evenflag.detectors.base import build_detector
     from evenflag.errors import ConfigError, EvenflagError
     from evenflag.metrics.suites import check_spec as check_metrics
     from evenflag.mitigation import check_kind
@@ -104,9 +106,38 @@ def check_values(cfg) -> None:
     for key in ("timeout_seconds", "claim_settle_seconds"):
         if not tracking[key] >= 0:
             raise ConfigError(f"tracking.{key} must be 0 or more, got {tracking[key]}")
+    if deferred is None:
+        check_detector(values["detector"], values["seed"])
+    else:
+        deferred.append((label, values["detector"], values["seed"]))
+
+
+def check_detectors(deferred: list) -> None:
+    """The detector checks ``check_values`` deferred, in order; the first that
+    fails raises its ConfigError as ``check_values`` would have, prefixed by
+    its label."""
+    from evenflag.errors import ConfigError
+
+    done = set()
+    for label, detector, seed in deferred:
+        if repr((detector, seed)) in done:
+            continue
+        done.add(repr((detector, seed)))
+        try:
+            check_detector(detector, seed)
+        except ConfigError as exc:
+            raise ConfigError(f"{label}: {exc}" if label else str(exc)) from exc
+
+
+def check_detector(detector: dict, seed: int) -> None:
+    """Build the detector of a (resolved) detector config once, so that its own
+    argument checks (and scikit-learn's parameter constraints) run at launch
+    rather than after training; one ConfigError if they fail."""
+    from evenflag.detectors.base import build_detector
+    from evenflag.errors import ConfigError, EvenflagError
+
     try:
-        detector = build_detector(values["detector"], seed=values["seed"])
-        check = getattr(detector, "check_settings", None)
+        check = getattr(build_detector(detector, seed=seed), "check_settings", None)
         if callable(check):
             check()
     except ConfigError:

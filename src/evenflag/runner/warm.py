@@ -6,10 +6,13 @@ opened the store; each worker then spends seconds importing the libraries a
 job needs. Here the same workers start at the beginning of the launch and
 import, build the sweep's first detector (without fitting it) and load its
 dataset, while the launch checks its settings.
-One worker prepares the tracking store as soon as its imports are done and
-the launch's checks passed, while the others go on warming; the launching
-process never imports MLflow (about 1.5 s) on the way to the first job, and
-goes on to Hydra's set-up while the warm-up ends. The workers are
+One worker builds the sweep's detectors to check their settings (the launch
+defers those checks to it) and prepares the tracking store as soon as its
+imports are done and the launch's other checks passed, while the others go
+on warming. So the launching process imports neither the detectors'
+libraries (scikit-learn, torch) nor MLflow on the way to the first job,
+seconds of CPU that would compete with the workers' imports on a small
+machine, and goes on to Hydra's set-up while the warm-up ends. The workers are
 joblib's reusable ones: the launcher's own ``Parallel`` call, made with the
 same arguments, gets them back with their imports done. Once the sweep is
 over they are ended at once instead of at the interpreter's exit.
@@ -33,8 +36,9 @@ JOB_MODULES = ("evenflag.runner.app", "evenflag.runner.job", "evenflag.runner.ru
 
 def prepare_worker(modules: list[str], dataset: dict | None = None, signals: str | None = None,
                    detector: dict | None = None, store: tuple | None = None) -> None:
-    """Import ``modules``, prepare the tracking ``store`` if given (once the
-    launch's checks passed), build ``detector`` (a detector config: its
+    """Import ``modules``; if ``store`` is given, wait for the launch's own
+    checks, run the detector checks it deferred and prepare the tracking
+    store (``Signals``); build ``detector`` (a detector config: its
     libraries, often imported only then, cost the first job most of a second)
     and load ``dataset``. ``signals`` is the launch's folder of signal files
     (``Signals``); once its cancel file exists (the launch failed its checks)
@@ -60,15 +64,15 @@ def prepare_worker(modules: list[str], dataset: dict | None = None, signals: str
     finally:
         gc.freeze()
         gc.enable()
-    if store is not None and signals is not None and signals.wait_for_checks():
-        signals.send_store(store)
+    if store is not None and signals is not None:
+        checks = signals.wait_for_checks()
+        if checks is None or not signals.send_store(store, checks):
+            return  # the launch failed its checks
     if detector is not None and not cancelled():
-        try:  # what the launch's own check does; nothing is fitted
-            from evenflag.detectors.base import build_detector
+        try:  # what the launch's check does; nothing is fitted
+            from evenflag.runner.config import check_detector
 
-            check = getattr(build_detector(detector, seed=0), "check_settings", None)
-            if callable(check):
-                check()
+            check_detector(detector, seed=0)
         except Exception:  # the jobs build (and report) it themselves
             pass
     if dataset is not None and not cancelled():
@@ -83,8 +87,10 @@ def prepare_worker(modules: list[str], dataset: dict | None = None, signals: str
 class Signals:
     """Files through which a launch and its warming workers talk while the
     workers' warm-up runs (a joblib task's result comes back only at its end):
-    *checked* (the launch's checks passed: a worker may prepare the store),
-    *cancel* (they failed: stop) and *store* (the prepared store, or its error)."""
+    *checked* (the launch's own checks passed; it holds the detector checks
+    it deferred, config.check_values), *cancel* (they failed: stop) and
+    *store* (the store prepared once the deferred checks passed, or the
+    first error)."""
 
     def __init__(self, folder: str):
         self.folder = folder
@@ -95,32 +101,46 @@ class Signals:
     def cancelled(self) -> bool:
         return os.path.exists(self.cancel_file)
 
-    def wait_for_checks(self) -> bool:
-        """In a worker: True once the launch's checks passed; False if they
-        failed or the launching process is gone."""
+    def wait_for_checks(self) -> list | None:
+        """In a worker: once the launch's own checks passed, the detector
+        checks it deferred; None if they failed or the launching process is gone."""
         parent = os.getppid()
         while not os.path.exists(self.checked_file):
             if self.cancelled() or os.getppid() != parent:
-                return False
+                return None
             time.sleep(0.01)
-        return True
+        with open(self.checked_file, "rb") as handle:
+            return pickle.load(handle)
 
-    def send_store(self, settings: tuple) -> None:
-        """In a worker: ``tracking.prepare_store``'s result or error, for ``receive_store``."""
+    def send_checked(self, checks: list) -> None:
+        """In the launch: its own checks passed; ``checks`` are those it deferred."""
+        self._write(self.checked_file, pickle.dumps(checks))
+
+    def send_store(self, settings: tuple, checks: list) -> bool:
+        """In a worker: the deferred ``checks``, then ``tracking.prepare_store``;
+        its result or the first error, for ``receive_store``. False if there
+        was an error."""
+        from evenflag.runner.config import check_detectors
         from evenflag.runner.tracking import prepare_store
 
         try:
+            check_detectors(checks)
             outcome = ("done", prepare_store(settings))
-        except Exception as error:  # the launch raises it as it is (a store that cannot be used)
+        except Exception as error:  # the launch raises it as it is (bad settings, a store that cannot be used)
             outcome = ("error", error)
         try:
             payload = pickle.dumps((settings, outcome))
-        except Exception:  # an error that cannot be pickled: the launch prepares the store itself
-            return
-        partial = self.store_file + ".partial"
+        except Exception:  # an error that cannot be pickled: the launch checks and prepares the store itself
+            return False
+        self._write(self.store_file, payload)
+        return outcome[0] == "done"
+
+    @staticmethod
+    def _write(path: str, payload: bytes) -> None:
+        partial = path + ".partial"
         with open(partial, "wb") as handle:
             handle.write(payload)
-        os.replace(partial, self.store_file)  # never read half-written
+        os.replace(partial, path)  # never read half-written
 
     def receive_store(self, settings: tuple, waiting: threading.Thread):
         """In the launch: the outcome sent for ``settings``, or None once
@@ -165,15 +185,17 @@ class Workers:
         except Exception:  # only a head start; the launcher starts its workers anyway
             pass
 
-    def prepare_store(self, settings: tuple) -> tuple[str, int]:
-        """``tracking.prepare_store`` for ``settings`` (the launch's checks
-        passed): as soon as a worker has prepared it, while the others still
-        warm up; its errors (a store that cannot be used) are raised here as
-        they are."""
+    def prepare_store(self, settings: tuple, checks: list) -> tuple[str, int]:
+        """The deferred detector ``checks`` (config.check_values), then
+        ``tracking.prepare_store`` for ``settings``, in a worker as soon as its
+        imports are done, while the others still warm up; called once the
+        launch's own checks passed. Their errors (bad detector settings, a
+        store that cannot be used) are raised here as they are."""
         from evenflag.errors import EvenflagError
+        from evenflag.runner.config import check_detectors
         from evenflag.runner.tracking import prepare_store
 
-        open(self.signals.checked_file, "w").close()
+        self.signals.send_checked(checks)
         outcome = self.signals.receive_store(settings, self.thread)
         if outcome is not None:
             status, value = outcome
@@ -183,6 +205,7 @@ class Workers:
         # No worker sent it (the pool broke, or the settings differ): in a worker now, or here.
         from joblib import delayed
 
+        check_detectors(checks)
         self.thread.join()
         try:
             return self._parallel()([delayed(prepare_store)(settings)])[0]
