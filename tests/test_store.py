@@ -283,7 +283,9 @@ def test_damaged_store_is_one_line_and_left_untouched(tmp_path, content, launche
         content = db.read_bytes()[: db.stat().st_size // 3]
     db.parent.mkdir(parents=True, exist_ok=True)
     db.write_bytes(content)
-    run = ("run", "-m", *LAUNCHERS[launcher], *SMALL, "study=t", "seed=0,1")  # parallel: a worker opens the store
+    # On the parallel launcher a worker opens the store.
+    run = ("run", *SMALL, "study=t") if launcher == "basic" else ("run", "-m", *LAUNCHERS[launcher], *SMALL,
+                                                                  "study=t", "seed=0,1")
     for args, fix in ((run, "move it aside"), (("report", "--study", "t"), "restore")):
         result = evenflag(tmp_path, *args)
         assert result.returncode == 2 and len(result.stderr.strip().splitlines()) == 1, result.stderr
