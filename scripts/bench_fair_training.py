@@ -6,7 +6,7 @@ best of each is kept, so that a slow spell of the machine hits both; torch runs
 with one thread (``--threads``), as each job of a parallel sweep does.
 
 Usage: .venv/bin/python scripts/bench_fair_training.py [--dataset adult] [--epochs 5] [--repeats 3]
-       [--threads 1]
+       [--threads 1] [--methods adversarial,distribution_matching,fairod]
 """
 
 import argparse
@@ -44,13 +44,14 @@ def main():
     parser.add_argument("--epochs", type=int, default=5)
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--threads", type=int, default=1)
+    parser.add_argument("--methods", default=",".join(m["name"] for m, _ in METHODS), help="comma-separated")
     args = parser.parse_args()
     torch.set_num_threads(args.threads)
     dataset = load_dataset(args.dataset)
     data = prepare(dataset, make_split(dataset, ProtocolSpec(), 0))
     print(f"{args.dataset}: {len(data.X_train):,} training rows x {data.X_train.shape[1]} features, "
           f"{args.epochs} epochs, best of {args.repeats}, {args.threads} torch thread(s)")
-    for method, base in METHODS:
+    for method, base in (pair for pair in METHODS if pair[0]["name"] in args.methods.split(",")):
         base_time, method_time = float("inf"), float("inf")
         for _ in range(args.repeats):
             base_time = min(base_time, seconds_per_epoch(base, data, args.epochs, with_group=False))
