@@ -46,6 +46,10 @@ def main():
     parser.add_argument("--threads", type=int, default=1)
     parser.add_argument("--methods", default=",".join(m["name"] for m, _ in METHODS), help="comma-separated")
     args = parser.parse_args()
+    unknown = set(args.methods.split(",")) - {m["name"] for m, _ in METHODS}
+    if unknown:
+        raise SystemExit(f"--methods: unknown {', '.join(sorted(unknown))}; "
+                         f"choose from {', '.join(m['name'] for m, _ in METHODS)}")
     torch.set_num_threads(args.threads)
     dataset = load_dataset(args.dataset)
     data = prepare(dataset, make_split(dataset, ProtocolSpec(), 0))
