@@ -136,12 +136,10 @@ class Tracker:
             return file_lock(self.sqlite.with_name(self.sqlite.name + ".claims.lock"), "claims on the tracking store")
         return contextlib.nullcontext()
 
-    def _runs_of(self, fingerprint: str, status: str):
-        return self.client.search_runs(
-            [self.experiment_id],
-            filter_string=f"tags.`{TAG}fingerprint` = '{fingerprint}' and attributes.status = '{status}'",
-            max_results=1000,
-        )
+    def _runs_of(self, fingerprint: str, status: str | None = None):
+        """The cell's runs, of one ``status`` or (None) of any."""
+        where = f"tags.`{TAG}fingerprint` = '{fingerprint}'" + (f" and attributes.status = '{status}'" if status else "")
+        return self.client.search_runs([self.experiment_id], filter_string=where, max_results=1000)
 
     def metrics_of(self, run_id: str) -> dict[str, float]:
         return dict(self.client.get_run(run_id).data.metrics)
@@ -155,8 +153,7 @@ class Tracker:
         with self._lock():
             # One query for both questions, a finished run of the cell and a live
             # claim of it (MLflow's filters cannot ask for two statuses at once).
-            runs = self.client.search_runs([self.experiment_id], filter_string=f"tags.`{TAG}fingerprint` = '{fingerprint}'",
-                                           max_results=1000)
+            runs = self._runs_of(fingerprint)
             finished = next((r.info.run_id for r in runs if r.info.status == "FINISHED"), None)
             if finished and not rerun:
                 return None, f"finished before as run {finished[:8]}"
@@ -170,8 +167,8 @@ class Tracker:
             run_id = self.start(run_name, {**tags, f"{TAG}fingerprint": fingerprint})
         if self.claim_settle_seconds:
             time.sleep(self.claim_settle_seconds)
-            live = [r for r in self._runs_of(fingerprint, "RUNNING") if not is_dead(r.data.tags, TAG)]
-            live = live or [r for r in self._runs_of(fingerprint, "RUNNING") if r.info.run_id == run_id]
+            running = self._runs_of(fingerprint, "RUNNING")
+            live = [r for r in running if not is_dead(r.data.tags, TAG)] or [r for r in running if r.info.run_id == run_id]
             winner = min(live, key=lambda r: (r.info.start_time, r.info.run_id)) if live else None
             if winner is not None and winner.info.run_id != run_id:
                 self.withdraw(run_id, f"the cell was claimed first by run {winner.info.run_id[:8]}")
