@@ -258,9 +258,9 @@ def test_neural_detectors_and_mitigations_run_in_a_sweep(tmp_path):
     for run in runs:
         assert 0.0 <= run.data.metrics["leakage_auroc"] <= 1.0
     adv = next(r for r in runs if r.data.params["detector.name"] == "adversarial")
-    curve = client.get_metric_history(adv.info.run_id, "train.adversary_accuracy")
+    curve = client.get_metric_history(adv.info.run_id, "train.probe_accuracy")
     assert [m.step for m in curve] == [0, 1, 2]
-    assert "train.adversary_baseline" in adv.data.metrics
+    assert "train.probe_baseline" in adv.data.metrics and "train.adversary_trace" in adv.data.metrics
     # group_thresholds: every group flagged at the same rate, within one row per group.
     equalised = next(r for r in runs if r.data.params["mitigation.kind"] == "group_thresholds")
     scores = pd.read_parquet(client.download_artifacts(equalised.info.run_id, "scores.parquet", str(tmp_path)))

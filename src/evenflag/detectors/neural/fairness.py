@@ -5,8 +5,10 @@ during ``fit``; a *wrapper* detector builds its base detector through the
 detector registry (``base: {name: deep_svdd, ...}``, or any registered neural
 plugin) and trains it with its penalty:
 
-* :class:`AdversarialDetector` (``adversarial``): adversaries predict the group
-  from the embedding; the encoder is trained so that they cannot.
+* :class:`AdversarialDetector` (``adversarial``): an adversary predicts the
+  group from the embedding (by default the best linear one on the embedding
+  and its squares, solved in closed form on every batch); the encoder is
+  trained so that it cannot.
 * :class:`DistributionMatchingDetector` (``distribution_matching``): the maximum
   mean discrepancy between the groups' embeddings (Gretton et al., JMLR 2012)
   is added to the loss, so the groups' embeddings are pulled to one
@@ -28,6 +30,8 @@ from evenflag.errors import DetectorError
 
 ENCODER_TARGETS = ("confusion", "maximise")
 MODES = ("alternating", "gradient_reversal")
+ADVERSARIES = ("closed_form", "network")
+ADVERSARY_FEATURES = ("quadratic", "linear")
 
 
 def _ramped(weight: float, epoch: int, warmup_epochs: int, ramp_epochs: int) -> float:
@@ -39,7 +43,27 @@ def _ramped(weight: float, epoch: int, warmup_epochs: int, ramp_epochs: int) -> 
     return weight
 
 
-# ---------------------------------------------------------------- adversary
+# ---------------------------------------------------------------- batches
+def balanced_batches(members, min_rows_per_group: int, n: int, batch_size: int, generator):
+    """Batches that hold at least ``min_rows_per_group`` rows of every group
+    (``members``: each group's row indices): each group's rows are shuffled and
+    dealt over the epoch's batches in proportion to its size, with a small
+    group's rows dealt again (cycled) where its share would fall below the minimum."""
+    torch = torch_module()
+    n_batches = max(1, -(-n // batch_size))
+    dealt = [[] for _ in range(n_batches)]
+    for rows in members:
+        per_batch = max(min_rows_per_group, -(-len(rows) // n_batches))
+        order = rows[torch.randperm(len(rows), generator=generator)]
+        need = per_batch * n_batches
+        cycled = order.repeat(-(-need // len(order)))[:need] if need > len(order) else order
+        chunks = torch.tensor_split(cycled, n_batches)
+        for batch, chunk in zip(dealt, chunks):
+            batch.append(chunk)
+    return [torch.cat(parts) for parts in dealt]
+
+
+# ---------------------------------------------------------------- the trained adversary
 def standardise(z, eps: float = 1e-5):
     """Each column of the batch to mean 0 and variance 1 (batch statistics, as
     batch normalisation without affine parameters computes them). Embeddings of
@@ -272,6 +296,134 @@ class MonitorProbe:
         return row
 
 
+# ---------------------------------------------------------------- the closed-form adversary
+def adversary_features(z, kind: str):
+    """What the closed-form adversary sees of a batch's embedding: the
+    embedding (``linear``), and also the square of each column's distance from
+    the batch mean (``quadratic``). With squares, a group told apart by its
+    spread, or by its distance from a hypersphere's centre (which is what the
+    anomaly score is), differs in the features' means, where the adversary can
+    see it; without them the encoder hides a mean shift by turning it into one
+    (README, fair training). The batch mean and each column's scale enter as
+    constants (no gradient): :func:`hotelling_lawley_trace` does not change under such a
+    map of the features, and the scaling keeps its covariance well conditioned
+    in float32 when a hypersphere model's embedding is tiny."""
+    torch = torch_module()
+    if kind == "quadratic":
+        deviation = z - z.detach().mean(dim=0)
+        z = torch.cat([z, deviation * deviation], dim=1)
+    return z / (z.detach().std(dim=0) + 1e-12)
+
+
+_HOTELLING_LAWLEY = None
+
+
+def hotelling_lawley_trace(features, onehot, ridge: float = 1e-3):
+    """``tr(E^-1 H)``, the Hotelling-Lawley trace of the groups on a batch's
+    features (rows x features; ``onehot``: rows x groups, 0/1): ``H`` the
+    between-group and ``E`` the within-group sums of squares and products. It
+    is the trace criterion of Fisher's linear discriminant: the sum, over the
+    discriminant directions, of the groups' spread against the spread within
+    them, so it is how well the best linear classifier of the features,
+    solved in closed form on this batch, tells the groups apart (with two
+    groups, ``T^2 / (n - 2)`` for Hotelling's two-sample ``T^2``). It does not
+    change under an invertible linear map of the features, so an encoder
+    cannot lower it by shrinking or stretching its embedding. ``ridge`` times
+    (rows - 1) is added to the diagonal of ``E`` so that it stays invertible
+    (for features of unit variance, ``ridge`` times each one's sum of squares;
+    0 gives the textbook value).
+
+    The gradient is written out: with ``X`` the centred features, ``Y`` the
+    group indicators, ``S = Y'X``, ``D`` the inverse group counts and
+    ``Q = E^-1 S'``, dV/dX = 2 (Y D (Q' + S Q D Q') - X Q D Q'), centred over
+    the rows: a few thin products instead of differentiating the p x p
+    products. tests/test_neural.py checks the value against statsmodels'
+    MANOVA and the gradient against torch's autograd."""
+    global _HOTELLING_LAWLEY
+    torch = torch_module()
+    if _HOTELLING_LAWLEY is None:
+        class HotellingLawleyTrace(torch.autograd.Function):
+            @staticmethod
+            def forward(ctx, features, onehot, ridge):
+                n, p = features.shape
+                centred = features - features.mean(dim=0)
+                inverse_counts = 1.0 / onehot.sum(dim=0).clamp_min(1.0)
+                sums = onehot.T @ centred  # S: n_g (m_g - m), a row per group
+                within = torch.addmm(torch.eye(p, dtype=features.dtype, device=features.device), centred.T, centred,
+                                     beta=ridge * max(n - 1, 1))
+                within = within - (sums.T * inverse_counts) @ sums  # E = X'X - S'DS (+ ridge)
+                solved = torch.linalg.solve(within, sums.T)  # Q: p x groups
+                between = sums @ solved  # S Q
+                ctx.save_for_backward(centred, onehot, solved, between, inverse_counts)
+                return (between.diagonal() * inverse_counts).sum()
+
+            @staticmethod
+            def backward(ctx, grad):
+                centred, onehot, solved, between, inverse_counts = ctx.saved_tensors
+                weighted = solved * inverse_counts  # Q D
+                right = solved.T + (between * inverse_counts) @ solved.T  # Q' + S Q D Q'
+                grad_x = (2.0 * grad) * ((onehot * inverse_counts) @ right - (centred @ weighted) @ solved.T)
+                return grad_x - grad_x.mean(dim=0), None, None
+
+        _HOTELLING_LAWLEY = HotellingLawleyTrace
+    return _HOTELLING_LAWLEY.apply(features, onehot, ridge)
+
+
+class ClosedFormAdversaryPenalty:
+    """The best linear adversary on each batch, in closed form: Fisher's
+    discriminant of the groups on :func:`adversary_features` of the embedding.
+    The encoder adds ``weight`` times how well it tells the groups apart
+    (:func:`hotelling_lawley_trace`) to its loss. A trained adversary lags
+    behind the encoder, and a fresh probe then still finds the group; this one
+    is solved anew on every batch, so there is nothing to outrun."""
+
+    def __init__(self, weight: float, features: str, min_rows_per_group: int, warmup_epochs: int, ramp_epochs: int,
+                 seed: int):
+        self.weight, self.features, self.min_rows_per_group = weight, features, min_rows_per_group
+        self.warmup_epochs, self.ramp_epochs, self.seed = warmup_epochs, ramp_epochs, seed
+
+    def start(self, group, detector: NeuralDetector, device):
+        return _ClosedFormAdversaryState(self, group, detector.embedding_dim, device)
+
+
+class _ClosedFormAdversaryState:
+    def __init__(self, spec: ClosedFormAdversaryPenalty, group, embedding_dim: int, device):
+        torch = torch_module()
+        values, codes = group_codes(group, "the adversarial detector", min_rows=spec.min_rows_per_group)
+        self.spec = spec
+        self.codes = torch.from_numpy(codes).to(device)
+        self.onehot = torch.nn.functional.one_hot(self.codes, len(values)).float()
+        self.probe = MonitorProbe(self.codes, len(values), embedding_dim, device, spec.seed)
+        self.members = [torch.from_numpy(np.flatnonzero(codes == g)) for g in range(len(values))]
+        self.epoch = 0
+        self._sum, self._batches_seen = 0.0, 0
+
+    def batches(self, n: int, batch_size: int, generator):
+        return balanced_batches(self.members, self.spec.min_rows_per_group, n, batch_size, generator)
+
+    def before_encoder_step(self, z, idx):
+        return None
+
+    def encoder_term(self, xb, zb, idx, epoch: int, detector):
+        weight = _ramped(self.spec.weight, epoch, self.spec.warmup_epochs, self.spec.ramp_epochs)
+        separation = hotelling_lawley_trace(adversary_features(zb, self.spec.features), self.onehot[idx])
+        self._sum += float(separation.detach())
+        self._batches_seen += 1
+        return self.probe.loss(zb, idx) + weight * separation
+
+    def after_encoder_step(self):
+        self.probe.update()
+
+    def epoch_summary(self) -> dict[str, float]:
+        row = {"adversary_trace": self._sum / max(self._batches_seen, 1),
+               "adversary_weight": _ramped(self.spec.weight, self.epoch, self.spec.warmup_epochs,
+                                           self.spec.ramp_epochs)}
+        row.update(self.probe.summary())
+        self._sum, self._batches_seen = 0.0, 0
+        self.epoch += 1
+        return row
+
+
 # ---------------------------------------------------------------- MMD
 MEDIAN_ROWS = 128  # rows of a batch used for the median heuristic (enough for a stable median, and cheap)
 
@@ -462,22 +614,7 @@ class _MMDState:
         self._weights = {}  # the batch's group layout -> its contrast weights
 
     def batches(self, n: int, batch_size: int, generator):
-        """Batches that hold at least ``min_rows_per_group`` rows of every group:
-        each group's rows are shuffled and dealt over the epoch's batches in
-        proportion to its size, with a small group's rows dealt again (cycled)
-        where its share would fall below the minimum."""
-        torch = torch_module()
-        n_batches = max(1, -(-n // batch_size))
-        dealt = [[] for _ in range(n_batches)]
-        for rows in self.members:
-            per_batch = max(self.spec.min_rows_per_group, -(-len(rows) // n_batches))
-            order = rows[torch.randperm(len(rows), generator=generator)]
-            need = per_batch * n_batches
-            cycled = order.repeat(-(-need // len(order)))[:need] if need > len(order) else order
-            chunks = torch.tensor_split(cycled, n_batches)
-            for batch, chunk in zip(dealt, chunks):
-                batch.append(chunk)
-        return [torch.cat(parts) for parts in dealt]
+        return balanced_batches(self.members, self.spec.min_rows_per_group, n, batch_size, generator)
 
     def before_encoder_step(self, z, idx):
         return None
@@ -586,7 +723,25 @@ class FairTrainedDetector:
 
 
 class AdversarialDetector(FairTrainedDetector):
-    """A neural detector trained so that adversaries cannot tell the group from its embedding.
+    """A neural detector trained so that an adversary cannot tell the group from its embedding.
+
+    Two adversaries:
+
+    * ``adversary="closed_form"`` (default): the best linear classifier of the
+      group on the batch's embedding and its squares, solved in closed form on
+      every batch; the encoder adds ``weight`` times how well it separates the
+      groups (:func:`hotelling_lawley_trace`) to its loss. Batches are dealt
+      so that each holds ``min_rows_per_group`` rows of every group.
+    * ``adversary="network"``: small networks trained by gradient steps to
+      predict the group (softmax over every group value), side by side with
+      the encoder. Measured from outside, the encoder outruns them and a fresh
+      probe still finds the group (README, fair training); kept for
+      comparison. Its settings are ``adversary_hidden``, ``adversary_steps``,
+      ``adversary_lr``, ``mode``, ``encoder_target``, ``n_adversaries``,
+      ``reinit_every`` and ``refit_steps``.
+
+    Their weights are on different scales: 0.03 (the default) for
+    ``closed_form``, 1 to 3 for ``network``.
 
     Parameters
     ----------
@@ -594,39 +749,60 @@ class AdversarialDetector(FairTrainedDetector):
         The neural base: ``{"name": "deep_svdd", ...settings}``, ``autoencoder``
         or any registered neural detector.
     weight : float
-        Strength of the adversarial term.
-    encoder_target : str
-        ``confusion``: the encoder pushes the adversaries' predictions to the
-        group prior (it wins only when they cannot tell); ``maximise``: it
-        maximises their loss, which it can also "win" by making them
-        confidently wrong, and that still leaks the group.
-    n_adversaries : int
-        Adversaries trained side by side; the encoder must fool all of them.
-    reinit_every : int
-        Re-initialise the adversaries every this many epochs (0: never), so the
-        encoder cannot settle on fooling one particular adversary.
-    refit_steps : int
-        Before each epoch, train the adversaries this many full-batch steps on
-        the current embedding of the training rows (0: never). The encoder
-        otherwise outruns adversaries that see one batch at a time; with
-        ``reinit_every=1`` each epoch faces a fresh adversary trained to near
-        convergence, which is what a held-out probe is.
-    adversary_hidden, adversary_steps, adversary_lr
-        Each adversary's widths, updates per encoder update, learning rate.
+        Strength of the adversarial term (0: the base exactly).
+    adversary : str
+        ``closed_form`` or ``network`` (above).
+    adversary_features : str
+        What the ``closed_form`` adversary sees: ``quadratic`` (the embedding
+        and its squares) or ``linear`` (the embedding only; the
+        encoder then moves the group into the embedding's spread).
+    min_rows_per_group : int
+        Rows of every group in each batch (``closed_form``; at least 2).
     warmup_epochs, ramp_epochs : int
         Epochs before the term starts, then a linear ramp of the weight.
+    encoder_target : str
+        (``network``) ``confusion``: the encoder pushes the adversaries'
+        predictions to the group prior; ``maximise``: it maximises their loss,
+        which it can also "win" by making them confidently wrong.
+    n_adversaries : int
+        (``network``) Adversaries trained side by side; the encoder must fool all.
+    reinit_every : int
+        (``network``) Re-initialise the adversaries every this many epochs (0: never).
+    refit_steps : int
+        (``network``) Before each epoch, train the adversaries this many
+        full-batch steps on the current embedding of the training rows (0: never).
+    adversary_hidden, adversary_steps, adversary_lr
+        (``network``) Each adversary's widths, updates per encoder update, learning rate.
     mode : str
-        ``alternating`` (adversaries frozen during the encoder step) or
-        ``gradient_reversal`` (one backward pass through a reversal layer).
+        (``network``) ``alternating`` (adversaries frozen during the encoder
+        step) or ``gradient_reversal`` (one backward pass through a reversal layer).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(0)
+    >>> X = rng.normal(size=(300, 4)).astype("float32")
+    >>> g = rng.choice(["a", "b"], 300)
+    >>> det = AdversarialDetector(base={"name": "deep_svdd", "hidden": [8], "embedding_dim": 3, "epochs": 2}).fit(X, g)
+    >>> sorted(det.history_[-1])
+    ['adversary_trace', 'adversary_weight', 'detection_loss', 'probe_accuracy', 'probe_baseline']
     """
 
     who = "the adversarial detector"
 
-    def __init__(self, base: dict | None = None, weight: float = 1.0, adversary_hidden: list[int] | None = None,
-                 adversary_steps: int = 5, warmup_epochs: int = 0, ramp_epochs: int = 0, mode: str = "alternating",
-                 adversary_lr: float = 1e-2, encoder_target: str = "maximise", n_adversaries: int = 1,
-                 reinit_every: int = 0, refit_steps: int = 0, seed: int = 0):
+    def __init__(self, base: dict | None = None, weight: float = 0.03, adversary: str = "closed_form",
+                 adversary_features: str = "quadratic", min_rows_per_group: int = 16, warmup_epochs: int = 0,
+                 ramp_epochs: int = 0, adversary_hidden: list[int] | None = None, adversary_steps: int = 5,
+                 adversary_lr: float = 1e-2, mode: str = "alternating", encoder_target: str = "maximise",
+                 n_adversaries: int = 1, reinit_every: int = 0, refit_steps: int = 0, seed: int = 0):
         super().__init__(base, weight, seed)
+        if adversary not in ADVERSARIES:
+            raise DetectorError(f"detector.adversary '{adversary}' is unknown; use one of {list(ADVERSARIES)}")
+        if adversary_features not in ADVERSARY_FEATURES:
+            raise DetectorError(f"detector.adversary_features '{adversary_features}' is unknown; use one of "
+                                f"{list(ADVERSARY_FEATURES)}")
+        if not isinstance(min_rows_per_group, int) or min_rows_per_group < 2:
+            raise DetectorError(f"detector.min_rows_per_group must be at least 2, got {min_rows_per_group!r}")
         if mode not in MODES:
             raise DetectorError(f"mode '{mode}' is unknown; use one of {list(MODES)}")
         if encoder_target not in ENCODER_TARGETS:
@@ -639,18 +815,26 @@ class AdversarialDetector(FairTrainedDetector):
         if not isinstance(refit_steps, int) or refit_steps < 0:
             raise DetectorError(f"detector.refit_steps must be 0 (never) or a positive number of steps, "
                                 f"got {refit_steps!r}")
-        self.adversary_hidden = list(adversary_hidden) if adversary_hidden is not None else [32]
-        self.adversary_steps = adversary_steps
+        self.adversary = adversary
+        self.adversary_features = adversary_features
+        self.min_rows_per_group = min_rows_per_group
         self.warmup_epochs = warmup_epochs
         self.ramp_epochs = ramp_epochs
-        self.mode = mode
+        self.adversary_hidden = list(adversary_hidden) if adversary_hidden is not None else [32]
+        self.adversary_steps = adversary_steps
         self.adversary_lr = adversary_lr
+        self.mode = mode
         self.encoder_target = encoder_target
         self.n_adversaries = n_adversaries
         self.reinit_every = reinit_every
         self.refit_steps = refit_steps
 
     def _penalty(self):
+        if self.adversary == "closed_form":
+            if self.weight == 0:
+                return None  # exactly the base: same batches, same steps
+            return ClosedFormAdversaryPenalty(self.weight, self.adversary_features, self.min_rows_per_group,
+                                          self.warmup_epochs, self.ramp_epochs, self.seed)
         return AdversaryPenalty(self.weight, self.adversary_hidden, self.adversary_steps, self.adversary_lr,
                                 self.warmup_epochs, self.ramp_epochs, self.mode, self.encoder_target,
                                 self.n_adversaries, self.reinit_every, self.seed, self.refit_steps)
