@@ -305,9 +305,9 @@ def adversary_features(z, kind: str):
     anomaly score is), differs in the features' means, where the adversary can
     see it; without them the encoder hides a mean shift by turning it into one
     (README, fair training). The batch mean and each column's scale enter as
-    constants (no gradient): :func:`hotelling_lawley_trace` does not change under such a
-    map of the features, and the scaling keeps its covariance well conditioned
-    in float32 when a hypersphere model's embedding is tiny."""
+    constants (no gradient): :func:`hotelling_lawley_trace` does not change
+    under such a map of the features, and the scaling keeps its covariance
+    well conditioned in float32 when a hypersphere model's embedding is tiny."""
     torch = torch_module()
     if kind == "quadratic":
         deviation = z - z.detach().mean(dim=0)
@@ -834,7 +834,7 @@ class AdversarialDetector(FairTrainedDetector):
             if self.weight == 0:
                 return None  # exactly the base: same batches, same steps
             return ClosedFormAdversaryPenalty(self.weight, self.adversary_features, self.min_rows_per_group,
-                                          self.warmup_epochs, self.ramp_epochs, self.seed)
+                                              self.warmup_epochs, self.ramp_epochs, self.seed)
         return AdversaryPenalty(self.weight, self.adversary_hidden, self.adversary_steps, self.adversary_lr,
                                 self.warmup_epochs, self.ramp_epochs, self.mode, self.encoder_target,
                                 self.n_adversaries, self.reinit_every, self.seed, self.refit_steps)
