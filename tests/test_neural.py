@@ -163,37 +163,34 @@ def test_weight_zero_matches_the_base_detector(adversary):
     np.testing.assert_allclose(adv.anomaly_score(data.X_test), base.anomaly_score(data.X_test), rtol=1e-5, atol=1e-7)
 
 
-def test_closed_form_adversary_on_intersectional_groups_and_small_groups():
+def test_closed_form_adversary_refuses_a_group_too_small_for_its_batches():
     rng = np.random.default_rng(0)
     X = rng.normal(size=(600, 6)).astype(np.float32)
-    sex = rng.choice(["female", "male"], 600)
-    region = rng.choice(["north", "south", "east"], 600, p=[0.5, 0.3, 0.2])
-    intersectional = np.char.add(np.char.add(sex, "|"), region)
-    det = AdversarialDetector(base={"name": "autoencoder", "hidden": [16], "embedding_dim": 4, "epochs": 3},
-                              seed=0).fit(X, intersectional)
-    values, counts = np.unique(intersectional, return_counts=True)
-    row = det.history_[-1]
-    assert len(values) == 6 and row["probe_baseline"] == pytest.approx(counts.max() / 600)
-    assert np.isfinite(row["adversary_trace"]) and row["adversary_trace"] > 0
-    tiny = np.where(np.arange(600) < 10, "rare", sex)  # 10 rows of one group, below the 16 each batch needs
+    group = np.where(np.arange(600) < 10, "rare", rng.choice(["female", "male"], 600))
     with pytest.raises(DetectorError, match="at least 16 training rows per group value.*'rare': 10"):
-        AdversarialDetector(base={"name": "deep_svdd", **SMALL}, seed=0).fit(X, tiny)
+        AdversarialDetector(base={"name": "deep_svdd", **SMALL}, seed=0).fit(X, group)
 
 
-@pytest.mark.parametrize("mode", ["alternating", "gradient_reversal"])
-def test_multi_valued_and_intersectional_groups(mode):
+@pytest.mark.parametrize("settings", [{"adversary": "network", "mode": "alternating", "weight": 0.5},
+                                      {"adversary": "network", "mode": "gradient_reversal", "weight": 0.5},
+                                      {"adversary": "closed_form"}], ids=["network", "network_reversal", "closed_form"])
+def test_multi_valued_and_intersectional_groups(settings):
     rng = np.random.default_rng(0)
     X = rng.normal(size=(600, 6)).astype(np.float32)
     sex = rng.choice(["female", "male"], 600)
     region = rng.choice(["north", "south", "east"], 600, p=[0.5, 0.3, 0.2])
     intersectional = np.char.add(np.char.add(sex, "|"), region)
     det = AdversarialDetector(base={"name": "autoencoder", "hidden": [16], "embedding_dim": 4, "epochs": 3},
-                              adversary="network", weight=0.5, mode=mode, seed=0).fit(X, intersectional)
+                              seed=0, **settings).fit(X, intersectional)
     values, counts = np.unique(intersectional, return_counts=True)
     assert len(values) == 6
     row = det.history_[-1]
-    assert row["adversary_baseline"] == pytest.approx(counts.max() / 600)
-    assert 0 <= row["adversary_accuracy"] <= 1 and np.isfinite(row["adversary_loss"])
+    if settings["adversary"] == "network":
+        assert row["adversary_baseline"] == pytest.approx(counts.max() / 600)
+        assert 0 <= row["adversary_accuracy"] <= 1 and np.isfinite(row["adversary_loss"])
+    else:
+        assert row["probe_baseline"] == pytest.approx(counts.max() / 600)
+        assert 0 <= row["probe_accuracy"] <= 1 and np.isfinite(row["adversary_trace"]) and row["adversary_trace"] > 0
 
 
 @pytest.mark.parametrize("mode", ["alternating", "gradient_reversal"])

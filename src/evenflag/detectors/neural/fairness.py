@@ -63,6 +63,32 @@ def balanced_batches(members, min_rows_per_group: int, n: int, batch_size: int, 
     return [torch.cat(parts) for parts in dealt]
 
 
+class _BatchedGroupsState:
+    """What the closed-form adversary and distribution matching share: every
+    group in every batch (:func:`balanced_batches`, so a group must have
+    ``spec.min_rows_per_group`` training rows) and a monitoring probe whose
+    accuracy is logged each epoch. ``who`` names the method in errors."""
+
+    def __init__(self, spec, group, who: str, embedding_dim: int, device):
+        torch = torch_module()
+        values, codes = group_codes(group, who, min_rows=spec.min_rows_per_group)
+        self.spec = spec
+        self.n_groups = len(values)
+        self.codes = torch.from_numpy(codes).to(device)
+        self.probe = MonitorProbe(self.codes, len(values), embedding_dim, device, spec.seed)
+        self.members = [torch.from_numpy(np.flatnonzero(codes == g)) for g in range(len(values))]
+        self.epoch = 0
+
+    def batches(self, n: int, batch_size: int, generator):
+        return balanced_batches(self.members, self.spec.min_rows_per_group, n, batch_size, generator)
+
+    def before_encoder_step(self, z, idx):
+        return None
+
+    def after_encoder_step(self):
+        self.probe.update()
+
+
 # ---------------------------------------------------------------- the trained adversary
 def standardise(z, eps: float = 1e-5):
     """Each column of the batch to mean 0 and variance 1 (batch statistics, as
@@ -386,23 +412,11 @@ class ClosedFormAdversaryPenalty:
         return _ClosedFormAdversaryState(self, group, detector.embedding_dim, device)
 
 
-class _ClosedFormAdversaryState:
+class _ClosedFormAdversaryState(_BatchedGroupsState):
     def __init__(self, spec: ClosedFormAdversaryPenalty, group, embedding_dim: int, device):
-        torch = torch_module()
-        values, codes = group_codes(group, "the adversarial detector", min_rows=spec.min_rows_per_group)
-        self.spec = spec
-        self.codes = torch.from_numpy(codes).to(device)
-        self.onehot = torch.nn.functional.one_hot(self.codes, len(values)).float()
-        self.probe = MonitorProbe(self.codes, len(values), embedding_dim, device, spec.seed)
-        self.members = [torch.from_numpy(np.flatnonzero(codes == g)) for g in range(len(values))]
-        self.epoch = 0
+        super().__init__(spec, group, "the adversarial detector", embedding_dim, device)
+        self.onehot = torch_module().nn.functional.one_hot(self.codes, self.n_groups).float()
         self._sum, self._batches_seen = 0.0, 0
-
-    def batches(self, n: int, batch_size: int, generator):
-        return balanced_batches(self.members, self.spec.min_rows_per_group, n, batch_size, generator)
-
-    def before_encoder_step(self, z, idx):
-        return None
 
     def encoder_term(self, xb, zb, idx, epoch: int, detector):
         weight = _ramped(self.spec.weight, epoch, self.spec.warmup_epochs, self.spec.ramp_epochs)
@@ -410,9 +424,6 @@ class _ClosedFormAdversaryState:
         self._sum += float(separation.detach())
         self._batches_seen += 1
         return self.probe.loss(zb, idx) + weight * separation
-
-    def after_encoder_step(self):
-        self.probe.update()
 
     def epoch_summary(self) -> dict[str, float]:
         row = {"adversary_trace": self._sum / max(self._batches_seen, 1),
@@ -601,23 +612,11 @@ class MMDPenalty:
         return _MMDState(self, group, detector.embedding_dim, device)
 
 
-class _MMDState:
+class _MMDState(_BatchedGroupsState):
     def __init__(self, spec: MMDPenalty, group, embedding_dim: int, device):
-        torch = torch_module()
-        values, codes = group_codes(group, "the distribution-matching detector", min_rows=spec.min_rows_per_group)
-        self.spec = spec
-        self.codes = torch.from_numpy(codes).to(device)
-        self.probe = MonitorProbe(self.codes, len(values), embedding_dim, device, spec.seed)
-        self.members = [torch.from_numpy(np.flatnonzero(codes == g)) for g in range(len(values))]
-        self.epoch = 0
+        super().__init__(spec, group, "the distribution-matching detector", embedding_dim, device)
         self._sum, self._score_sum, self._batches_seen = 0.0, 0.0, 0
         self._weights = {}  # the batch's group layout -> its contrast weights
-
-    def batches(self, n: int, batch_size: int, generator):
-        return balanced_batches(self.members, self.spec.min_rows_per_group, n, batch_size, generator)
-
-    def before_encoder_step(self, z, idx):
-        return None
 
     def encoder_term(self, xb, zb, idx, epoch: int, detector):
         probe_loss = self.probe.loss(zb, idx)
@@ -655,9 +654,6 @@ class _MMDState:
 
     def _ramped_score_weight(self, epoch: int) -> float:
         return _ramped(self.spec.score_weight, epoch, self.spec.warmup_epochs, self.spec.ramp_epochs)
-
-    def after_encoder_step(self):
-        self.probe.update()
 
     def epoch_summary(self) -> dict[str, float]:
         seen = max(self._batches_seen, 1)
