@@ -271,9 +271,9 @@ def test_adversary_settings_are_checked():
 @pytest.mark.parametrize("n_groups", [2, 3])
 def test_adversary_trace_equals_statsmodels_manova(n_groups):
     """The closed-form adversary's criterion is the Hotelling-Lawley trace
-    tr(E^-1 H) of a one-way MANOVA (Lawley, 1938; Hotelling, 1951): equal to
-    the "Hotelling-Lawley trace" statsmodels' MANOVA reports for the group
-    effect (ridge 0). Its hand-written gradient equals torch's autograd of the
+    tr(E^-1 H) of a one-way MANOVA (Lawley, 1938; Hotelling, 1951; years from
+    memory): equal to the "Hotelling-Lawley trace" statsmodels' MANOVA reports
+    for the group effect (ridge 0). Its hand-written gradient equals torch's autograd of the
     same formula (float64), ridge included."""
     import pandas as pd
     from statsmodels.multivariate.manova import MANOVA
